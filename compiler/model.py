@@ -1,0 +1,217 @@
+"""The Scheme: states, directed edges with rate labels, symbols, observables.
+
+A scheme is a continuous-time Markov chain on a graph of states. Edge i→j
+carries a label ℓ(i→j) > 0, an arithmetic expression in parameters (rate
+constants) and inputs (concentrations). Symbols are ordered parameters first,
+then inputs, each in declaration order; compiled functions take their values
+in that order.
+
+If a scheme declares no parameters and no inputs at all, every name used in a
+label becomes a parameter (in order of first appearance) and
+:attr:`Scheme.implicit_symbols` is true; otherwise an undeclared name is an
+error.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field
+
+from .errors import ModelError
+from .parse import Label, label_symbols, label_text, parse_label
+
+
+@dataclass(frozen=True)
+class Symbol:
+    name: str
+    kind: str  # "parameter" or "input"
+    value: float | None = None
+    min: float | None = None
+    max: float | None = None
+
+
+@dataclass(frozen=True)
+class Edge:
+    source: str
+    target: str
+    rate: str       # the text as written
+    label: Label    # the parsed tuple tree
+
+
+def _check_name(name, what: str, where: str) -> str:
+    if not isinstance(name, str) or not name.strip():
+        raise ModelError(f"{where}: {what} name must be a non-empty string, got {name!r}")
+    if name.startswith("_"):
+        raise ModelError(f"{where}: {what} name {name!r} must not start with an underscore")
+    return name
+
+
+def _check_number(value, what: str, where: str, positive: bool = False):
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ModelError(f"{where}: {what} must be a number, got {value!r}")
+    value = float(value)
+    if not math.isfinite(value):
+        raise ModelError(f"{where}: {what} must be finite, got {value!r}")
+    if positive and value <= 0:
+        raise ModelError(f"{where}: {what} must be positive, got {value!r}")
+    return value
+
+
+@dataclass
+class Scheme:
+    """A kinetic scheme. Build it with :meth:`add_edge` and friends, or :func:`load`.
+
+    >>> s = Scheme()
+    >>> s.add_edge("E", "ES", "k1*S"); s.add_edge("ES", "E", "km1 + k2")
+    >>> s.states, s.symbols
+    (('E', 'ES'), ('k1', 'S', 'km1', 'k2'))
+    """
+
+    name: str = "scheme"
+    origin: str = "scheme"
+    _states: list[str] = field(default_factory=list)
+    _edges: dict[tuple[str, str], Edge] = field(default_factory=dict)
+    _params: dict[str, Symbol] = field(default_factory=dict)
+    _inputs: dict[str, Symbol] = field(default_factory=dict)
+    _observables: dict[str, dict[str, float]] = field(default_factory=dict)
+
+    # ------------------------------------------------------------ building
+    def add_state(self, name: str) -> None:
+        _check_name(name, "state", self.origin)
+        if name not in self._states:
+            self._states.append(name)
+
+    def add_edge(self, source: str, target: str, rate) -> None:
+        where = f"{self.origin}: edge {source}->{target}"
+        _check_name(source, "state", where)
+        _check_name(target, "state", where)
+        if source == target:
+            raise ModelError(f"{where}: self-loop; a transition must change the state")
+        if (source, target) in self._edges:
+            raise ModelError(f"{where}: duplicate edge; combine the rates into one label")
+        label = parse_label(rate, where=where)
+        self.add_state(source)
+        self.add_state(target)
+        self._edges[(source, target)] = Edge(source, target, str(rate), label)
+
+    def _add_symbol(self, table, kind, name, value, min, max):
+        where = f"{self.origin}: {kind} {name!r}"
+        _check_name(name, kind, self.origin)
+        if name in ("exp", "log", "sqrt"):
+            raise ModelError(f"{where}: name is reserved for a function")
+        if name in self._params or name in self._inputs:
+            raise ModelError(f"{where}: symbol declared twice")
+        value = _check_number(value, "value", where)
+        lo = _check_number(min, "min", where)
+        hi = _check_number(max, "max", where)
+        if lo is not None and hi is not None and lo > hi:
+            raise ModelError(f"{where}: min {lo} is greater than max {hi}")
+        if value is not None and ((lo is not None and value < lo) or (hi is not None and value > hi)):
+            raise ModelError(f"{where}: value {value} lies outside [min, max]")
+        table[name] = Symbol(name, kind, value, lo, hi)
+
+    def add_parameter(self, name: str, *, value=None, min=None, max=None) -> None:
+        self._add_symbol(self._params, "parameter", name, value, min, max)
+
+    def add_input(self, name: str, *, value=None, min=None, max=None) -> None:
+        self._add_symbol(self._inputs, "input", name, value, min, max)
+
+    def add_observable(self, name: str, weights: dict) -> None:
+        where = f"{self.origin}: observable {name!r}"
+        _check_name(name, "observable", self.origin)
+        if name in self._observables:
+            raise ModelError(f"{where}: declared twice")
+        if not isinstance(weights, dict) or not weights:
+            raise ModelError(f"{where}: needs a non-empty map of state name to weight")
+        clean = {}
+        for state, w in weights.items():
+            clean[state] = _check_number(w, f"weight of state {state!r}", where)
+        self._observables[name] = clean
+
+    # ------------------------------------------------------------ reading
+    @property
+    def states(self) -> tuple[str, ...]:
+        return tuple(self._states)
+
+    @property
+    def edges(self) -> tuple[Edge, ...]:
+        return tuple(self._edges.values())
+
+    @property
+    def implicit_symbols(self) -> bool:
+        return not self._params and not self._inputs
+
+    @property
+    def parameters(self) -> tuple[Symbol, ...]:
+        if self.implicit_symbols:
+            names: dict[str, None] = {}
+            for e in self._edges.values():
+                for s in label_symbols(e.label):
+                    names.setdefault(s, None)
+            return tuple(Symbol(n, "parameter") for n in names)
+        return tuple(self._params.values())
+
+    @property
+    def inputs(self) -> tuple[Symbol, ...]:
+        return tuple(self._inputs.values())
+
+    @property
+    def symbols(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self.parameters + self.inputs)
+
+    def symbol(self, name: str) -> Symbol:
+        for s in self.parameters + self.inputs:
+            if s.name == name:
+                return s
+        raise ModelError(f"{self.origin}: unknown symbol {name!r}")
+
+    @property
+    def observables(self) -> dict[str, dict[str, float]]:
+        return {k: dict(v) for k, v in self._observables.items()}
+
+    def index(self) -> dict[str, int]:
+        return {s: i for i, s in enumerate(self._states)}
+
+    def edge_list(self) -> list[tuple[int, int]]:
+        """Edges as (source index, target index) in insertion order."""
+        idx = self.index()
+        return [(idx[e.source], idx[e.target]) for e in self._edges.values()]
+
+    # ------------------------------------------------------------ checking
+    def validate(self) -> "Scheme":
+        """Refuse empty schemes, undeclared symbols and unknown observable states."""
+        if not self._edges:
+            raise ModelError(f"{self.origin}: empty scheme; it needs at least one edge")
+        declared = set(self.symbols)
+        for e in self._edges.values():
+            for s in label_symbols(e.label):
+                if s not in declared:
+                    raise ModelError(f"{self.origin}: edge {e.source}->{e.target}: undeclared symbol {s!r} "
+                                     f"in rate {e.rate!r}; declare it under [parameters] or [inputs]")
+        for obs, weights in self._observables.items():
+            for state in weights:
+                if state not in self._states:
+                    raise ModelError(f"{self.origin}: observable {obs!r} names unknown state {state!r}")
+        return self
+
+    def canonical(self) -> str:
+        """A canonical text of the scheme (for content hashes): same scheme, same text."""
+        doc = {
+            "states": list(self._states),
+            "edges": [[e.source, e.target, label_text(e.label)] for e in self._edges.values()],
+            "parameters": [[s.name, s.value, s.min, s.max] for s in self.parameters],
+            "inputs": [[s.name, s.value, s.min, s.max] for s in self.inputs],
+            "observables": {k: sorted(v.items()) for k, v in sorted(self._observables.items())},
+        }
+        return json.dumps(doc, sort_keys=True, separators=(",", ":"))
+
+    def content_hash(self) -> str:
+        return hashlib.sha256(self.canonical().encode()).hexdigest()
+
+    def defaults(self) -> dict[str, float]:
+        """Values given in the model, by symbol name (symbols without one are absent)."""
+        return {s.name: s.value for s in self.parameters + self.inputs if s.value is not None}

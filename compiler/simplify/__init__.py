@@ -1,0 +1,1 @@
+"""Simplifier passes and derivatives over the IR."""
