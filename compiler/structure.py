@@ -1,0 +1,495 @@
+"""Graph structure of a scheme: components, cycles, exact tree counts, detailed balance.
+
+The graph functions take plain integer graphs: ``n`` states ``0..n-1`` and
+``edges``, a sequence of ``(i, j)`` pairs meaning a transition i→j. They are
+exact, iterative (no recursion limit) and deterministic. The scheme-level
+functions :func:`detailed_balance` and :func:`structure_profile` take a
+:class:`~treeflux.compiler.model.Scheme`; only :func:`detailed_balance` uses
+SymPy, to decide Kolmogorov's criterion on the labels.
+
+Notation. With ``w(i→j)`` the number of parallel edges i→j, the out-degree
+Laplacian is ``K = D_out − A`` (``A[i, j] = w(i→j)``), and the generator of the
+chain is ``L = −Kᵀ`` (``L[j, i] = w(i→j)``, ``L[i, i] = −Σ_k w(i→k)``).
+
+References
+----------
+.. [1] W. T. Tutte, "The dissection of equilateral triangles into equilateral
+   triangles", Proc. Cambridge Philos. Soc. 44 (1948) 463–482 (directed
+   Matrix-Tree theorem).
+.. [2] S. Chaiken, "A combinatorial proof of the all minors matrix tree
+   theorem", SIAM J. Algebraic Discrete Methods 3 (1982) 319–329.
+.. [3] E. H. Bareiss, "Sylvester's identity and multistep integer-preserving
+   Gaussian elimination", Math. Comp. 22 (1968) 565–578.
+.. [4] R. E. Tarjan, "Depth-first search and linear graph algorithms",
+   SIAM J. Comput. 1 (1972) 146–160.
+.. [5] A. Kolmogoroff, "Zur Theorie der Markoffschen Ketten", Math. Ann. 112
+   (1936) 155–160.
+"""
+
+from __future__ import annotations
+
+import heapq
+from collections import Counter, deque
+
+from .errors import ModelError
+
+__all__ = [
+    "strongly_connected_components", "terminal_components", "is_reversible",
+    "cycle_basis", "tree_counts", "detailed_balance", "structure_profile",
+]
+
+
+# ------------------------------------------------------------------ checking
+
+def _checked(n, edges) -> list[tuple[int, int]]:
+    """Validate an integer graph; return its edges as a list of int pairs."""
+    if isinstance(n, bool) or not isinstance(n, int) or n < 0:
+        raise ModelError(f"number of states must be a non-negative integer, got {n!r}")
+    out = []
+    for e in edges:
+        try:
+            i, j = e
+        except (TypeError, ValueError):
+            raise ModelError(f"edge {e!r} is not a pair (i, j)") from None
+        for v in (i, j):
+            if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < n:
+                raise ModelError(f"edge {e!r}: state {v!r} is not an integer in 0..{n - 1}")
+        out.append((i, j))
+    return out
+
+
+def _successors(n: int, edges) -> list[list[int]]:
+    succ: list[set[int]] = [set() for _ in range(n)]
+    for i, j in edges:
+        if i != j:
+            succ[i].add(j)
+    return [sorted(s) for s in succ]
+
+
+# ------------------------------------------------------------------ components
+
+def strongly_connected_components(n: int, edges) -> list[list[int]]:
+    """Strongly connected components, each sorted, ordered by smallest member.
+
+    Tarjan's algorithm [4]_ with an explicit stack, O(n + m).
+
+    >>> strongly_connected_components(4, [(0, 1), (1, 0), (1, 2), (3, 2)])
+    [[0, 1], [2], [3]]
+    """
+    edges = _checked(n, edges)
+    succ = _successors(n, edges)
+    index = [-1] * n
+    low = [0] * n
+    on_stack = [False] * n
+    stack: list[int] = []
+    comps: list[list[int]] = []
+    counter = 0
+    for start in range(n):
+        if index[start] != -1:
+            continue
+        index[start] = low[start] = counter
+        counter += 1
+        stack.append(start)
+        on_stack[start] = True
+        work = [[start, 0]]
+        while work:
+            frame = work[-1]
+            v, pos = frame
+            if pos < len(succ[v]):
+                frame[1] = pos + 1
+                w = succ[v][pos]
+                if index[w] == -1:
+                    index[w] = low[w] = counter
+                    counter += 1
+                    stack.append(w)
+                    on_stack[w] = True
+                    work.append([w, 0])
+                elif on_stack[w] and index[w] < low[v]:
+                    low[v] = index[w]
+                continue
+            work.pop()
+            if work:
+                u = work[-1][0]
+                if low[v] < low[u]:
+                    low[u] = low[v]
+            if low[v] == index[v]:
+                comp = []
+                while True:
+                    w = stack.pop()
+                    on_stack[w] = False
+                    comp.append(w)
+                    if w == v:
+                        break
+                comps.append(sorted(comp))
+    comps.sort(key=lambda c: c[0])
+    return comps
+
+
+def terminal_components(n: int, edges) -> list[list[int]]:
+    """Strongly connected components with no edge leaving them (closed classes).
+
+    The stationary distributions of the chain are supported on these; there is
+    one extreme stationary distribution per terminal component. Same ordering
+    as :func:`strongly_connected_components`.
+
+    >>> terminal_components(3, [(0, 1), (0, 2)])
+    [[1], [2]]
+    """
+    edges = _checked(n, edges)
+    comps = strongly_connected_components(n, edges)
+    owner = [0] * n
+    for c, comp in enumerate(comps):
+        for s in comp:
+            owner[s] = c
+    leaves = [True] * len(comps)
+    for i, j in edges:
+        if owner[i] != owner[j]:
+            leaves[owner[i]] = False
+    return [comp for c, comp in enumerate(comps) if leaves[c]]
+
+
+def is_reversible(n: int, edges) -> bool:
+    """True when every edge i→j has its reverse j→i (self-loops are ignored)."""
+    edges = _checked(n, edges)
+    present = {(i, j) for i, j in edges if i != j}
+    return all((j, i) in present for i, j in present)
+
+
+# ------------------------------------------------------------------ cycles
+
+def cycle_basis(n: int, edges) -> list[list[int]]:
+    """Fundamental cycles of the undirected skeleton.
+
+    The skeleton joins i and j when i→j or j→i is an edge (self-loops and
+    parallel edges dropped). A breadth-first spanning tree is grown from the
+    smallest state of each connected part (neighbours in increasing order);
+    each non-tree pair {u, v} (u < v, in increasing order) closes one cycle,
+    listed as ``[a, ..., u, v, ..., b]`` where a is the lowest common ancestor
+    of u and v and the cycle closes with b→a. There are
+    ``m_skeleton − n + (number of connected parts)`` cycles; together they
+    form a basis of the cycle space.
+
+    >>> cycle_basis(3, [(0, 1), (1, 2), (2, 0)])
+    [[0, 1, 2]]
+    """
+    edges = _checked(n, edges)
+    nbrs: list[set[int]] = [set() for _ in range(n)]
+    for i, j in edges:
+        if i != j:
+            nbrs[i].add(j)
+            nbrs[j].add(i)
+    order = [sorted(s) for s in nbrs]
+    parent = [-1] * n
+    depth = [-1] * n
+    for root in range(n):
+        if depth[root] != -1:
+            continue
+        depth[root] = 0
+        queue = deque([root])
+        while queue:
+            a = queue.popleft()
+            for b in order[a]:
+                if depth[b] == -1:
+                    depth[b] = depth[a] + 1
+                    parent[b] = a
+                    queue.append(b)
+    cycles = []
+    for u in range(n):
+        for v in order[u]:
+            if v <= u or parent[v] == u or parent[u] == v:
+                continue
+            up_u, up_v = [u], [v]
+            a, b = u, v
+            while depth[a] > depth[b]:
+                a = parent[a]
+                up_u.append(a)
+            while depth[b] > depth[a]:
+                b = parent[b]
+                up_v.append(b)
+            while a != b:
+                a, b = parent[a], parent[b]
+                up_u.append(a)
+                up_v.append(b)
+            cycles.append(up_u[::-1] + up_v[:-1])
+    return cycles
+
+
+# ------------------------------------------------------------------ tree counts
+
+def tree_counts(n: int, edges) -> list[int]:
+    """Exact number of spanning in-trees rooted at each state.
+
+    An in-tree (in-arborescence) rooted at r is a set of n−1 edges, one leaving
+    every state other than r, with no cycle; every state then has a directed
+    path to r. Parallel edges count separately; self-loops never lie on a tree.
+
+    Maths. By the directed Matrix-Tree theorem [1]_ the count is the principal
+    minor ρ_r = det K^(r) of the out-degree Laplacian K = D_out − A with row and
+    column r removed. The adjugate satisfies K·adj K = adj K·K = 0, and
+    ``K·1 = 0``; when rank K = n − 1, which holds exactly when the graph has a
+    single terminal strongly connected component T, ``adj K = 1·ρᵀ`` so ρ
+    spans the left kernel of K (equivalently L ρ = 0). Otherwise adj K = 0 and
+    every count is 0. In the first case ρ_r > 0 iff r ∈ T, since every state
+    can reach r then.
+
+    Computation. Pick a root r₀ ∈ T; every principal minor of K on a set W
+    with r₀ ∉ W is positive (all-minors Matrix-Tree theorem [2]_: it counts
+    forests rooted outside W and every state reaches r₀), so fraction-free
+    Bareiss elimination [3]_ of Kᵀ needs no pivot search and may eliminate
+    the states other than r₀ in any order. The order is a greedy Markowitz
+    choice on the live pattern, so only the entries touched by fill are
+    updated: rows untouched by a pivot are rescaled lazily by the exact ratio
+    of pivots (the Bareiss identity for a zero multiplier). The last pivot is
+    ρ_{r₀}; exact back-substitution in the triangular factor then gives the
+    integer kernel vector ρ (every division is exact because ρ is integral).
+    All arithmetic is on Python integers; no floats.
+
+    Returns
+    -------
+    list of int
+        ``counts[r]`` is the number of spanning trees rooted at r.
+
+    >>> tree_counts(3, [(0, 1), (1, 0), (1, 2), (2, 1)])   # a path 0-1-2
+    [1, 1, 1]
+    >>> tree_counts(3, [(i, j) for i in range(3) for j in range(3) if i != j])
+    [3, 3, 3]
+    """
+    edges = _checked(n, edges)
+    if n == 0:
+        return []
+    terminal = terminal_components(n, edges)
+    if len(terminal) != 1:
+        return [0] * n
+    weight = Counter((i, j) for i, j in edges if i != j)
+    # Row i of Kᵀ: diagonal out(i), and −w(j→i) at column j for each edge j→i.
+    rows: list[dict[int, int]] = [dict() for _ in range(n)]
+    for (i, j), w in weight.items():
+        rows[i][i] = rows[i].get(i, 0) + w
+        rows[j][i] = rows[j].get(i, 0) - w
+    col_rows: list[set[int]] = [set() for _ in range(n)]
+    for i, row in enumerate(rows):
+        for j in row:
+            col_rows[j].add(i)
+    root = max(terminal[0], key=lambda s: (len(rows[s]) + len(col_rows[s]), -s))
+
+    def score(k: int) -> int:
+        return (len(rows[k]) - 1) * (len(col_rows[k]) - 1)
+
+    heap = [(score(k), k) for k in range(n) if k != root]
+    heapq.heapify(heap)
+    alive = [True] * n
+    alive[root] = False            # never a pivot
+    level = [0] * n                # rows[i] holds Bareiss values after step level[i]
+    pivots = [1]                   # pivots[t] = leading principal minor of size t
+    factor: list[tuple[int, dict[int, int]]] = []
+    for step in range(1, n):
+        while True:
+            s, k = heapq.heappop(heap)
+            if alive[k] and s == score(k):
+                break
+        alive[k] = False
+        prev = pivots[step - 1]
+        _catch_up(rows, level, k, step - 1, pivots)
+        row_k = rows[k]
+        pk = row_k[k]
+        if pk <= 0:
+            raise RuntimeError(f"internal error: non-positive Bareiss pivot {pk} at state {k}")
+        rows[k] = None
+        col_rows[k].discard(k)
+        rest = [(j, v) for j, v in row_k.items() if j != k]
+        touched = set()
+        for j, _ in rest:
+            col_rows[j].discard(k)
+            touched.add(j)
+        for i in sorted(col_rows[k]):
+            _catch_up(rows, level, i, step - 1, pivots)
+            row_i = rows[i]
+            a = row_i.pop(k)
+            for j in row_i:
+                row_i[j] *= pk
+            for j, v in rest:
+                new = row_i.get(j, 0) - a * v
+                if new:
+                    if j not in row_i:
+                        col_rows[j].add(i)
+                        touched.add(j)
+                    row_i[j] = new
+                elif j in row_i:
+                    del row_i[j]
+                    col_rows[j].discard(i)
+                    touched.add(j)
+            for j in row_i:
+                q, r = divmod(row_i[j], prev)
+                if r:
+                    raise RuntimeError("internal error: inexact Bareiss division")
+                row_i[j] = q
+            level[i] = step
+            touched.add(i)
+        col_rows[k] = set()
+        factor.append((k, row_k))
+        pivots.append(pk)
+        for j in touched:
+            if alive[j]:
+                heapq.heappush(heap, (score(j), j))
+    counts = [0] * n
+    counts[root] = pivots[n - 1]
+    for k, row_k in reversed(factor):
+        total = sum(v * counts[j] for j, v in row_k.items() if j != k)
+        q, r = divmod(-total, row_k[k])
+        if r or q < 0:
+            raise RuntimeError("internal error: kernel vector is not a non-negative integer")
+        counts[k] = q
+    return counts
+
+
+def _catch_up(rows, level, i: int, step: int, pivots) -> None:
+    """Bring row i from its stored Bareiss step to ``step`` (exact rescaling)."""
+    old = level[i]
+    if old == step:
+        return
+    num, den = pivots[step], pivots[old]
+    row = rows[i]
+    for j in row:
+        row[j] = row[j] * num // den
+    level[i] = step
+
+
+# ------------------------------------------------------------------ schemes
+
+def _sympy_label(label, symbols: dict):
+    """A SymPy expression of a parsed label (tuple tree from :mod:`.parse`)."""
+    import sympy
+    kind = label[0]
+    if kind == "num":
+        return sympy.Rational(label[1].numerator, label[1].denominator)
+    if kind == "sym":
+        if label[1] not in symbols:
+            symbols[label[1]] = sympy.Symbol(label[1], positive=True)
+        return symbols[label[1]]
+    args = [_sympy_label(a, symbols) for a in label[1:]]
+    if kind == "neg":
+        return -args[0]
+    if kind in ("exp", "log", "sqrt"):
+        return getattr(sympy, kind)(args[0])
+    a, b = args
+    return {"add": lambda: a + b, "sub": lambda: a - b, "mul": lambda: a * b,
+            "div": lambda: a / b, "pow": lambda: a ** b}[kind]()
+
+
+def _ratio_status(fwd, rev):
+    """Classify Π forward / Π reverse: "holds", "fails" (a constant ≠ 1) or "depends"."""
+    import sympy
+    ratio = fwd / rev
+    if ratio == 1:
+        return "holds"
+    r = sympy.cancel(ratio)
+    if r == 1:
+        return "holds"
+    if not r.is_rational_function(*r.free_symbols):
+        # cancel decides rational functions; exp, log, sqrt and symbolic powers
+        # need the rewriting passes (all symbols are positive, so force is sound).
+        steps = (lambda e: sympy.cancel(sympy.expand_log(sympy.powsimp(e, force=True), force=True)),
+                 sympy.simplify)
+        for step in steps:
+            r = step(r)
+            if r == 1:
+                return "holds"
+    if r.free_symbols:
+        return "depends"
+    same = r.equals(1)
+    if same is None:
+        same = abs(sympy.N(r - 1, 60)) < sympy.Float("1e-45")
+    return "holds" if same else "fails"
+
+
+def detailed_balance(scheme) -> dict:
+    """Decide detailed balance of a scheme from its labels (Kolmogorov's criterion).
+
+    A chain satisfies detailed balance iff it is reversible (every edge has its
+    reverse) and, around every cycle, the product of the forward labels equals
+    the product of the reverse labels [5]_; it suffices to check the cycles of
+    a cycle basis (:func:`cycle_basis`), since every cycle's ratio is a product
+    of basis-cycle ratios and their inverses. Labels are read as SymPy
+    expressions in positive symbols; for each basis cycle the ratio
+    Π forward / Π reverse is reduced (``cancel``; for labels with exp, log,
+    sqrt or symbolic powers also ``powsimp``/``simplify``).
+
+    Returns
+    -------
+    dict
+        ``verdict``: True when every basis ratio is identically 1; False when
+        the scheme is not reversible or some ratio is a constant other than 1;
+        otherwise ``"conditional"``. ``conditions``: one string
+        ``"<Π forward> = <Π reverse>"`` per basis cycle whose ratio is not
+        identically 1 (empty unless the verdict is "conditional").
+        ``cycles``: every basis cycle as a list of state names, forward
+        direction in list order, closing back to the first. ``reason``: one
+        line explaining the verdict.
+    """
+    import sympy
+    scheme.validate()
+    states = scheme.states
+    edges = scheme.edge_list()
+    n = len(states)
+    present = {(e.source, e.target) for e in scheme.edges}
+    for e in scheme.edges:
+        if (e.target, e.source) not in present:
+            return {"verdict": False, "conditions": [], "cycles": [],
+                    "reason": f"not reversible: edge {e.source}->{e.target} has no reverse edge"}
+    symbols: dict = {}
+    label = {}
+    for (i, j), e in zip(edges, scheme.edges):
+        label[(i, j)] = _sympy_label(e.label, symbols)
+    cycles = cycle_basis(n, edges)
+    conditions = []
+    for cyc in cycles:
+        ring = list(zip(cyc, cyc[1:] + cyc[:1]))
+        fwd = sympy.Mul(*[label[(a, b)] for a, b in ring])
+        rev = sympy.Mul(*[label[(b, a)] for a, b in ring])
+        status = _ratio_status(fwd, rev)
+        names = [states[s] for s in cyc]
+        if status == "fails":
+            path = "->".join(names + names[:1])
+            return {"verdict": False, "conditions": [],
+                    "cycles": [[states[s] for s in c] for c in cycles],
+                    "reason": f"cycle {path}: the product of forward rates differs from the "
+                              f"product of reverse rates for all values"}
+        if status == "depends":
+            conditions.append(f"{sympy.sstr(fwd)} = {sympy.sstr(rev)}")
+    named = [[states[s] for s in c] for c in cycles]
+    if conditions:
+        return {"verdict": "conditional", "conditions": conditions, "cycles": named,
+                "reason": f"{len(conditions)} of {len(cycles)} basis cycles balance only "
+                          f"when their conditions hold"}
+    reason = (f"every basis cycle balances identically ({len(cycles)} checked)" if cycles
+              else "reversible and without cycles: detailed balance always holds")
+    return {"verdict": True, "conditions": [], "cycles": named, "reason": reason}
+
+
+def structure_profile(scheme) -> dict:
+    """A JSON-serialisable summary of a scheme's graph structure.
+
+    Keys: ``states`` (names), ``edges`` (count), ``strongly_connected``,
+    ``terminal_components`` (lists of names), ``reversible``,
+    ``detailed_balance`` (True, False or "conditional") with
+    ``detailed_balance_conditions`` (list of "lhs = rhs" strings), ``trees``
+    (state name → decimal string of the exact number of spanning in-trees
+    rooted there, :func:`tree_counts`) and ``implicit_symbols``.
+    """
+    scheme.validate()
+    states = list(scheme.states)
+    n = len(states)
+    edges = scheme.edge_list()
+    balance = detailed_balance(scheme)
+    counts = tree_counts(n, edges)
+    return {
+        "states": states,
+        "edges": len(edges),
+        "strongly_connected": len(strongly_connected_components(n, edges)) == 1,
+        "terminal_components": [[states[s] for s in c] for c in terminal_components(n, edges)],
+        "reversible": is_reversible(n, edges),
+        "detailed_balance": balance["verdict"],
+        "detailed_balance_conditions": list(balance["conditions"]),
+        "trees": {states[i]: str(c) for i, c in enumerate(counts)},
+        "implicit_symbols": bool(scheme.implicit_symbols),
+    }
