@@ -285,9 +285,9 @@ def _fraction_pow(a, b):
 class Domain:
     """An op table over one kind of number; :func:`evaluate` runs any of them."""
 
-    def __init__(self, const, add, mul, div, sub, neg, pow, exp, log, sqrt, max):
+    def __init__(self, const, add, mul, div, sub, neg, pow, exp, log, sqrt, max, input=None):
         self.table = dict(const=const, add=add, mul=mul, div=div, sub=sub, neg=neg,
-                          pow=pow, exp=exp, log=log, sqrt=sqrt, max=max)
+                          pow=pow, exp=exp, log=log, sqrt=sqrt, max=max, input=input)
 
 
 def _sum(xs):
@@ -311,10 +311,11 @@ EXACT = Domain(const=lambda v: v, add=_sum, mul=_prod, div=lambda a, b: a / b,
 
 def mpmath_domain(dps: int = 50) -> Domain:
     import mpmath
-    mp = mpmath.mp.clone() if hasattr(mpmath.mp, "clone") else mpmath.mp
+    mp = mpmath.MPContext()
     mp.dps = dps
     mpf = mp.mpf
-    return Domain(const=lambda v: mpf(v.numerator) / v.denominator, add=_sum, mul=_prod,
+    return Domain(input=lambda v: mpf(v) if not isinstance(v, Fraction) else mpf(v.numerator) / v.denominator,
+                  const=lambda v: mpf(v.numerator) / v.denominator, add=_sum, mul=_prod,
                   div=lambda a, b: a / b, sub=lambda a, b: a - b, neg=lambda a: -a,
                   pow=lambda a, b: a ** b, exp=mp.exp, log=mp.log, sqrt=mp.sqrt, max=max)
 
@@ -339,13 +340,14 @@ def evaluate(fn_or_graph, roots, inputs, domain: Domain | str = "exact") -> list
         domain = {"exact": EXACT, "mpmath": None, "numpy": None}[domain] or (
             mpmath_domain() if domain == "mpmath" else _numpy_domain())
     t = domain.table
+    convert = t.get("input")
     values: dict[int, object] = {}
     for i in live(graph, roots):
         op, args, data = graph.ops[i], graph.args[i], graph.data[i]
         if op == "const":
             values[i] = t["const"](data)
         elif op == "input":
-            values[i] = inputs[data]
+            values[i] = convert(inputs[data]) if convert else inputs[data]
         elif op in NARY:
             values[i] = t[op]([values[a] for a in args])
         else:

@@ -1,0 +1,310 @@
+"""The compile pipeline: scheme → plan → front end → IR passes → back end.
+
+:func:`plan` decides the method from the structure (exact tree counts, the
+flop count of elimination under the fill-reducing order, detailed balance)
+and refuses requests that would exhaust memory or time, before any work.
+:func:`compile_scheme` runs the stages and returns a
+:class:`~treeflux.runtime.model.CompiledModel`.
+"""
+
+from __future__ import annotations
+
+import importlib
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from treeflux.runtime.model import CompiledModel, ModelInfo
+
+from . import ir
+from .errors import ModelError, TooLargeError
+from .frontend import build
+from .model import Scheme
+
+BACKENDS = ("python", "c", "cython", "llvm")
+METHODS = ("auto", "trees", "elimination", "equilibrium", "numeric")
+
+# Straight-line code is worth it up to about this many operations; beyond,
+# native compile time grows superlinearly and the looped numeric path wins
+# (TECH-NOTES: Q6 ≈ 17,800 flops compiles in seconds, 90,000 in half a minute).
+STRAIGHT_LINE_LIMIT = 20_000
+# Symbolic elimination builds one IR node per operation; beyond this the
+# graph itself costs hundreds of megabytes.
+MAX_SYMBOLIC_OPS = 1_000_000
+# Tree enumeration: total factors Σ_roots count × (n−1).
+MAX_TREE_FACTORS = 4_000_000
+# Exact tree counts (big integers) are computed up to this many states.
+MAX_COUNT_STATES = 400
+# Detailed-balance checks run SymPy per basis cycle; skipped beyond this.
+MAX_BALANCE_CYCLES = 400
+# formula(expand=True) lists trees only up to this many per state.
+MAX_FORMULA_TREES = 20_000
+
+
+@dataclass
+class Plan:
+    method: str
+    reasons: dict = field(default_factory=dict)
+
+
+def _structure():
+    from . import structure
+    return structure
+
+
+def plan(scheme: Scheme, method: str = "auto") -> Plan:
+    """Choose (or check) the method, with the numbers that led to the choice."""
+    if method not in METHODS:
+        raise ModelError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
+    from treeflux.runtime.numeric import EliminationPlan
+
+    st = _structure()
+    scheme.validate()
+    n = len(scheme.states)
+    edges = scheme.edge_list()
+    comps = st.terminal_components(n, edges)
+    reasons: dict = {"states": n, "edges": len(edges), "terminal_components": len(comps)}
+    tree_factors = None
+    if n <= MAX_COUNT_STATES:
+        counts = st.tree_counts(n, edges)
+        tree_factors = sum(c * (len(comp) - 1) for comp in comps for c in (counts[i] for i in comp))
+        reasons["tree_factors"] = tree_factors
+    flops = 0
+    fill = 0
+    for comp in comps:
+        local = {s: a for a, s in enumerate(comp)}
+        sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
+        if len(comp) > 1:
+            p = EliminationPlan(len(comp), sub)
+            flops += p.flops
+            fill += p.fill
+    reasons["elimination_flops"] = flops
+    reasons["fill"] = fill
+    balance = None
+    if st.is_reversible(n, edges) and len(edges) // 2 - n + 1 <= MAX_BALANCE_CYCLES:
+        balance = st.detailed_balance(scheme)["verdict"]
+    reasons["detailed_balance"] = balance
+    reasons["limits"] = {"straight_line_ops": STRAIGHT_LINE_LIMIT, "tree_factors": MAX_TREE_FACTORS,
+                         "symbolic_ops": MAX_SYMBOLIC_OPS}
+
+    if method == "auto":
+        if balance is True and len(comps) == 1:
+            chosen = "equilibrium"
+        elif tree_factors is not None and tree_factors <= min(flops, 400):
+            chosen = "trees"
+        elif flops <= STRAIGHT_LINE_LIMIT or len(comps) > 1:
+            chosen = "elimination"
+        else:
+            chosen = "numeric"
+        reasons["why"] = {
+            "equilibrium": "detailed balance holds identically: path products are exact and O(n)",
+            "trees": "the tree sums are no larger than the elimination form",
+            "elimination": f"elimination needs {flops} flops, within the straight-line limit",
+            "numeric": f"elimination needs {flops} flops, beyond the straight-line limit "
+                       f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination",
+        }[chosen]
+        return Plan(chosen, reasons)
+    if method == "trees":
+        if tree_factors is None or tree_factors > MAX_TREE_FACTORS:
+            shown = "more than can be counted here" if tree_factors is None else f"{tree_factors:,}"
+            raise TooLargeError(f"{scheme.origin}: tree enumeration needs {shown} tree factors "
+                                f"(limit {MAX_TREE_FACTORS:,}); use method='elimination' "
+                                f"({flops:,} flops) or 'numeric'")
+    elif method == "elimination":
+        if flops > MAX_SYMBOLIC_OPS:
+            raise TooLargeError(f"{scheme.origin}: symbolic elimination needs about {flops:,} operations "
+                                f"(limit {MAX_SYMBOLIC_OPS:,}); use method='numeric'")
+    elif method == "equilibrium":
+        if balance is not True:
+            raise ModelError(f"{scheme.origin}: method 'equilibrium' needs detailed balance to hold "
+                             f"identically; it is {balance!r} here (see `treeflux profile`)")
+    elif method == "numeric" and len(comps) > 1:
+        raise ModelError(f"{scheme.origin}: the numeric path needs one terminal component; "
+                         f"this scheme has {len(comps)}")
+    return Plan(method, reasons)
+
+
+def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
+    g = fn.graph
+    index = scheme.index()
+    p = fn.group("p")
+    nodes, weights = [], [[0.0] * len(scheme.observables) for _ in scheme.states]
+    for k, (name, w) in enumerate(scheme.observables.items()):
+        terms = []
+        for state, weight in w.items():
+            weights[index[state]][k] = weight
+            if weight == 1:
+                terms.append(p[index[state]])
+            elif weight != 0:
+                terms.append(g.mul(g.const(weight), p[index[state]]))
+        nodes.append(g.add(*terms) if terms else g.const(0))
+    return nodes, weights
+
+
+def _simplify(fn: ir.Function, report: list | None) -> ir.Function:
+    try:
+        from .simplify import simplify
+    except ImportError:
+        return ir.compact(fn)
+    return simplify(fn, report=report)
+
+
+def _backend(name: str):
+    if name not in BACKENDS:
+        raise ModelError(f"unknown backend {name!r}; choose one of {', '.join(BACKENDS)}")
+    return importlib.import_module(f"treeflux.compiler.backends.{name}")
+
+
+def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "python",
+                   jacobian: bool = False, log_jacobian: bool = False,
+                   name: str = "treeflux_model") -> CompiledModel:
+    """Compile a scheme into a :class:`CompiledModel`.
+
+    Parameters
+    ----------
+    method : {"auto", "trees", "elimination", "equilibrium", "numeric"}
+        Front end; ``auto`` decides from the structure (see :func:`plan`).
+    backend : {"python", "c", "cython", "llvm"}
+        Code generator for the straight-line kernel.
+    jacobian : bool
+        Also compile ∂p/∂θ for every symbol (``log_jacobian``: ∂p/∂log θ).
+    """
+    timings = {}
+    t0 = time.perf_counter()
+    chosen = plan(scheme, method)
+    timings["plan"] = time.perf_counter() - t0
+    back = _backend(backend)
+    n = len(scheme.states)
+    edges = scheme.edge_list()
+    label_fn = _label_function(scheme)
+    label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
+    obs_names = tuple(scheme.observables)
+    weights: list = [[0.0] * len(obs_names) for _ in range(n)]
+    report: list = []
+    if chosen.method == "numeric":
+        if jacobian:
+            raise ModelError(f"{scheme.origin}: derivatives need a straight-line method; this scheme "
+                             f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
+        kernel, groups = None, {}
+        comps = _structure().terminal_components(n, edges)
+        for k, w in enumerate(scheme.observables.values()):
+            for state, weight in w.items():
+                weights[scheme.index()[state]][k] = weight
+    else:
+        t0 = time.perf_counter()
+        fn, info = build(scheme, method=chosen.method)
+        comps = info.components
+        timings["frontend"] = time.perf_counter() - t0
+        kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
+        if "p" in fn.groups:
+            kept.add_group("p", fn.group("p"))
+            if obs_names:
+                nodes, weights = _observable_nodes(scheme, fn)
+                kept.add_group("obs", nodes)
+        else:
+            kept.add_group("basis", fn.group("basis"))
+        t0 = time.perf_counter()
+        fn = _simplify(kept, report)
+        timings["simplify"] = time.perf_counter() - t0
+        if jacobian:
+            if "p" not in fn.groups:
+                raise ModelError(f"{scheme.origin}: derivatives need a unique steady state")
+            from .simplify import differentiate
+            t0 = time.perf_counter()
+            fn = differentiate(fn, group="p", log=log_jacobian)
+            fn = _simplify(fn, None)
+            timings["derivatives"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        kernel = back.build(ir.compact(fn), name=name)
+        timings["backend"] = time.perf_counter() - t0
+        groups = dict(fn.groups)
+    sym = {s.name: s for s in scheme.parameters + scheme.inputs}
+    info = ModelInfo(
+        name=scheme.name, states=scheme.states,
+        parameters=tuple(s.name for s in scheme.parameters),
+        inputs=tuple(s.name for s in scheme.inputs),
+        edges=edges, components=comps, groups=groups,
+        observable_names=obs_names, observable_weights=weights,
+        defaults=scheme.defaults(),
+        bounds={k: (v.min, v.max) for k, v in sym.items()},
+        method=chosen.method, backend=backend if kernel is not None else "numeric",
+        log_jacobian=log_jacobian,
+        tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0)
+    profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report, "timings": timings}
+    model = CompiledModel(info, kernel, label_kernel,
+                          formula=lambda state, **kw: formula(scheme, state, method=chosen.method, **kw),
+                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=chosen.method),
+                          profile=profile)
+    return model
+
+
+def _label_function(scheme: Scheme) -> ir.Function:
+    from .frontend import lower_labels
+
+    g = ir.Graph()
+    labels = lower_labels(scheme, g)
+    fn = ir.Function(g, len(scheme.symbols), [], labels=labels)
+    fn.add_group("rates", labels)
+    return ir.compact(fn)
+
+
+def formula(scheme: Scheme, state: str, *, method: str = "elimination", expand: bool = False):
+    """SymPy expression of ρ_state (the unnormalized steady-state weight).
+
+    With ``expand`` (or for the tree method) it is the sum over spanning trees
+    rooted at the state, refused above :data:`MAX_FORMULA_TREES` trees; else the
+    nested elimination form x_state · Π_k d_k, equal to the tree sum exactly.
+    """
+    st = _structure()
+    n = len(scheme.states)
+    edges = scheme.edge_list()
+    i = scheme.index()[state]
+    if expand or method == "trees":
+        count = st.tree_counts(n, edges)[i] if n <= MAX_COUNT_STATES else None
+        if count is None or count > MAX_FORMULA_TREES:
+            shown = "too many to count" if count is None else f"{count:,}"
+            raise TooLargeError(f"{scheme.origin}: the expanded formula of {state!r} has {shown} tree terms "
+                                f"(limit {MAX_FORMULA_TREES:,}); ask for the nested form (expand=False)")
+        fn, info = build(scheme, method="trees", scale=False)
+        node = fn.group("rho")[i]
+        return ir.to_sympy(fn.graph, [node], scheme.symbols)[0]
+    fn, info = build(scheme, method="elimination")
+    rho = fn.group("rho")
+    comp_index = next((c for c, comp in enumerate(info.components) if i in comp), None)
+    if comp_index is None:
+        import sympy
+        return sympy.Integer(0)
+    pivots = info.pivots[comp_index] if info.pivots else []
+    g = fn.graph
+    node = g.mul(rho[i], *pivots) if pivots else rho[i]
+    return ir.to_sympy(g, [node], scheme.symbols)[0]
+
+
+def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[Path]:
+    """Write standalone source for ``target`` into ``out_dir``; returns the paths."""
+    back = _backend(target)
+    chosen = plan(scheme, method)
+    if chosen.method == "numeric":
+        raise TooLargeError(f"{scheme.origin}: too large for straight-line source "
+                            f"({chosen.reasons['elimination_flops']:,} flops); use the looped numeric path")
+    fn, _ = build(scheme, method=chosen.method)
+    kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
+    key = "p" if "p" in fn.groups else "basis"
+    kept.add_group(key, fn.group(key))
+    fn = ir.compact(_simplify(kept, None))
+    name = "".join(ch if ch.isalnum() else "_" for ch in scheme.name).strip("_").lower() or "model"
+    if not name[0].isalpha():
+        name = "m_" + name
+    files = dict(back.emit(fn, name=name))
+    if hasattr(back, "embed_example"):
+        files.update(back.embed_example(fn, name=name))
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    written = []
+    for fname, text in sorted(files.items()):
+        path = out / fname
+        tmp = path.with_name(path.name + ".tmp")
+        tmp.write_text(text)
+        tmp.replace(path)
+        written.append(path)
+    return written

@@ -1,0 +1,259 @@
+"""CompiledModel: what a compiled scheme offers at run time.
+
+A CompiledModel holds a compiled kernel (any back end) that maps rows of
+symbol values to its outputs (steady state, observables, derivatives), a
+small numpy kernel for the edge rates, and the metadata to read both. It
+validates inputs (shape, finiteness, positivity), broadcasts dictionaries,
+and guards the straight-line formulas: rows whose result is not a finite
+probability vector (extreme rates beyond the range of float64 products) are
+recomputed by the looped subtraction-free elimination of
+:mod:`treeflux.runtime.numeric`, which works on ratios and cannot overflow
+where the answer itself is representable.
+
+All values are model predictions of the scheme, not measurements.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import EvaluationError
+from .kernel import Kernel
+
+
+@dataclass
+class ModelInfo:
+    """Metadata a CompiledModel needs; filled in by the compiler."""
+
+    name: str
+    states: tuple
+    parameters: tuple
+    inputs: tuple
+    edges: list                       # (source index, target index), edge order
+    components: list                  # terminal components (lists of state indices)
+    groups: dict                      # output group → (start, stop)
+    observable_names: tuple = ()
+    observable_weights: list = field(default_factory=list)  # n_states rows × n_observables
+    defaults: dict = field(default_factory=dict)
+    bounds: dict = field(default_factory=dict)  # name → (min or None, max or None)
+    method: str = ""
+    backend: str = ""
+    log_jacobian: bool = False
+    tree_edges: int = 0  # trees method: edges per tree (n−1); guards underflow
+
+
+class CompiledModel:
+    """A compiled steady-state function of a kinetic scheme.
+
+    Parameters are given as an (N, len(symbols)) array in :attr:`symbols`
+    order, or as a dict name → scalar or (N,) array (missing names take the
+    model file's values). Rates must be finite; parameters positive, inputs
+    (concentrations) non-negative.
+    """
+
+    def __init__(self, info: ModelInfo, kernel: Kernel | None, label_kernel: Kernel, *,
+                 formula=None, emitter=None, profile=None):
+        self.info = info
+        self.kernel = kernel
+        self.label_kernel = label_kernel
+        self._formula = formula
+        self._emitter = emitter
+        self._plan = None
+        self.profile = profile or {}
+
+    # ------------------------------------------------------------ metadata
+    @property
+    def states(self) -> tuple:
+        return tuple(self.info.states)
+
+    @property
+    def symbols(self) -> tuple:
+        return tuple(self.info.parameters) + tuple(self.info.inputs)
+
+    @property
+    def observable_names(self) -> tuple:
+        return tuple(self.info.observable_names)
+
+    @property
+    def method(self) -> str:
+        return self.info.method
+
+    @property
+    def backend(self) -> str:
+        return self.info.backend
+
+    def __repr__(self):
+        return (f"<CompiledModel {self.info.name!r}: {len(self.states)} states, "
+                f"{len(self.symbols)} symbols, method={self.method}, backend={self.backend}>")
+
+    # ------------------------------------------------------------ inputs
+    def as_array(self, X) -> np.ndarray:
+        """Validate and convert inputs to a C-contiguous (N, n_symbols) float64 array."""
+        syms = self.symbols
+        if isinstance(X, dict):
+            unknown = [k for k in X if k not in syms]
+            if unknown:
+                raise EvaluationError(f"unknown symbol {unknown[0]!r}; the model's symbols are {', '.join(syms)}")
+            cols = []
+            for s in syms:
+                if s in X:
+                    v = X[s]
+                elif s in self.info.defaults:
+                    v = self.info.defaults[s]
+                else:
+                    raise EvaluationError(f"symbol {s!r} has no value: pass it or give it a value in the model")
+                v = np.asarray(v, dtype=np.float64)
+                if v.ndim > 1:
+                    raise EvaluationError(f"symbol {s!r}: expected a scalar or a 1-d array, got shape {v.shape}")
+                cols.append(v)
+            try:
+                cols = np.broadcast_arrays(*[np.atleast_1d(c) for c in cols])
+            except ValueError:
+                shapes = {s: np.shape(c) for s, c in zip(syms, cols) if np.ndim(c)}
+                raise EvaluationError(f"arrays of different lengths cannot be broadcast: {shapes}") from None
+            arr = np.ascontiguousarray(np.stack(cols, axis=1)) if cols else np.zeros((1, 0))
+        else:
+            try:
+                arr = np.asarray(X, dtype=np.float64)
+            except (TypeError, ValueError):
+                raise EvaluationError("inputs must be a float array or a dict of name → value") from None
+            if arr.ndim == 1 and arr.shape[0] == len(syms):
+                arr = arr[None, :]
+            if arr.ndim != 2 or arr.shape[1] != len(syms):
+                raise EvaluationError(f"expected an (N, {len(syms)}) array of symbol values "
+                                      f"({', '.join(syms)}), got shape {arr.shape}")
+            arr = np.ascontiguousarray(arr)
+        self._check(arr)
+        return arr
+
+    def _check(self, arr: np.ndarray) -> None:
+        finite = np.isfinite(arr)
+        if not finite.all():
+            r, c = np.argwhere(~finite)[0]
+            raise EvaluationError(f"row {r}: symbol {self.symbols[c]!r} is not finite ({arr[r, c]})")
+        n_par = len(self.info.parameters)
+        bad = arr[:, :n_par] <= 0
+        if bad.any():
+            r, c = np.argwhere(bad)[0]
+            raise EvaluationError(f"row {r}: parameter {self.symbols[c]!r} must be positive, got {arr[r, c]}")
+        neg = arr[:, n_par:] < 0
+        if neg.any():
+            r, c = np.argwhere(neg)[0]
+            raise EvaluationError(f"row {r}: input {self.symbols[n_par + c]!r} must be non-negative, "
+                                  f"got {arr[r, n_par + c]}")
+
+    # ------------------------------------------------------------ evaluation
+    def labels(self, X) -> np.ndarray:
+        """Edge rates (N, n_edges) in scheme edge order."""
+        return self.label_kernel(self.as_array(X))
+
+    def _outputs(self, arr, threads=None):
+        if self.kernel is None:
+            raise EvaluationError("this model was compiled for the looped numeric path only")
+        return self.kernel(arr, threads=threads)
+
+    def _require_single(self):
+        if len(self.info.components) != 1:
+            comps = "; ".join("{" + ", ".join(self.info.states[i] for i in c) + "}"
+                              for c in self.info.components)
+            raise EvaluationError(f"the scheme has {len(self.info.components)} terminal components "
+                                  f"({comps}), so its steady state is not unique; use basis(X)")
+
+    def steady_state(self, X, *, out=None, threads=None) -> np.ndarray:
+        """Steady-state probabilities (N, n_states) in :attr:`states` order."""
+        self._require_single()
+        arr = self.as_array(X)
+        n = len(self.states)
+        if self.kernel is None:
+            P = self._numeric(arr)
+        else:
+            a, b = self.info.groups["p"]
+            P = self._outputs(arr, threads)[:, a:b]
+            bad = ~np.isfinite(P).all(axis=1) | (np.abs(P.sum(axis=1) - 1.0) > 1e-9)
+            if self.info.tree_edges:
+                bad |= self._tree_underflow(arr)
+            if bad.any():
+                P = np.array(P)
+                P[bad] = self._numeric(arr[bad])
+        if out is not None:
+            if out.shape != (arr.shape[0], n):
+                raise EvaluationError(f"out must have shape {(arr.shape[0], n)}, got {out.shape}")
+            out[...] = P
+            return out
+        return np.ascontiguousarray(P)
+
+    def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
+        """Rows where a tree product of labels scaled by their maximum could
+        fall below the normal float64 range: (min/max)^(n−1) < 1e-290. Those
+        rows go to the looped elimination, which works on ratios."""
+        rates = self.label_kernel(arr)
+        spread = np.log10(rates.max(axis=1)) - np.log10(rates.min(axis=1))
+        return self.info.tree_edges * spread > 290.0
+
+    def _numeric(self, arr: np.ndarray) -> np.ndarray:
+        from .numeric import EliminationPlan
+
+        if self._plan is None:
+            self._plan = EliminationPlan(len(self.states), self.info.edges)
+        rates = self.label_kernel(arr)
+        return self._plan.steady_state(rates)
+
+    def basis(self, X, *, threads=None) -> np.ndarray:
+        """One steady state per terminal component: (N, n_components, n_states)."""
+        arr = self.as_array(X)
+        n, c = len(self.states), len(self.info.components)
+        if self.kernel is None:
+            if c == 1:
+                return self._numeric(arr)[:, None, :]
+            raise EvaluationError("basis() of a scheme with several terminal components needs a "
+                                  "straight-line method (trees or elimination)")
+        key = "p" if c == 1 else "basis"
+        a, b = self.info.groups[key]
+        return self._outputs(arr, threads)[:, a:b].reshape(arr.shape[0], c, n)
+
+    def observables(self, X, *, threads=None) -> np.ndarray:
+        """Observables (N, n_observables): weighted sums of state probabilities."""
+        if not self.info.observable_names:
+            raise EvaluationError("the model declares no observables")
+        self._require_single()
+        arr = self.as_array(X)
+        if self.kernel is not None and "obs" in self.info.groups:
+            a, b = self.info.groups["obs"]
+            out = self._outputs(arr, threads)
+            O = out[:, a:b]
+            pa, pb = self.info.groups["p"]
+            if np.isfinite(out[:, pa:pb]).all():
+                return np.ascontiguousarray(O)
+        return self.steady_state(arr) @ self.observable_weights
+
+    @property
+    def observable_weights(self) -> np.ndarray:
+        return np.asarray(self.info.observable_weights, dtype=np.float64).reshape(
+            len(self.states), len(self.info.observable_names))
+
+    def jacobian(self, X, *, threads=None) -> np.ndarray:
+        """∂p_i/∂θ_j as (N, n_states, n_symbols) (∂p_i/∂log θ_j if compiled with log=True)."""
+        if "jac" not in self.info.groups:
+            raise EvaluationError("compile with jacobian=True to get derivatives")
+        self._require_single()
+        arr = self.as_array(X)
+        a, b = self.info.groups["jac"]
+        J = self._outputs(arr, threads)[:, a:b]
+        return J.reshape(arr.shape[0], len(self.states), len(self.symbols))
+
+    # ------------------------------------------------------------ closed forms and code
+    def formula(self, state: str, **options):
+        """SymPy expression of ρ_state, the unnormalized steady-state weight."""
+        if state not in self.info.states:
+            raise EvaluationError(f"unknown state {state!r}; states are {', '.join(self.info.states)}")
+        if self._formula is None:
+            raise EvaluationError("this model carries no closed form (loaded without its compiler)")
+        return self._formula(state, **options)
+
+    def emit(self, target: str, out_dir) -> list:
+        """Write standalone source for ``target`` (python, c, cython, llvm) into ``out_dir``."""
+        if self._emitter is None:
+            raise EvaluationError("this model carries no emitter (loaded without its compiler)")
+        return self._emitter(target, out_dir)
