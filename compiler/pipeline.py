@@ -80,9 +80,12 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             fill += p.fill
     reasons["elimination_flops"] = flops
     reasons["fill"] = fill
-    balance = None
-    if st.is_reversible(n, edges) and len(edges) // 2 - n + 1 <= MAX_BALANCE_CYCLES:
+    if not st.is_reversible(n, edges):
+        balance = False  # a one-way edge can never be balanced
+    elif len(edges) // 2 - n + 1 <= MAX_BALANCE_CYCLES:
         balance = st.detailed_balance(scheme)["verdict"]
+    else:
+        balance = None  # not checked: too many cycles for the symbolic test
     reasons["detailed_balance"] = balance
     reasons["limits"] = {"straight_line_ops": STRAIGHT_LINE_LIMIT, "tree_factors": MAX_TREE_FACTORS,
                          "symbolic_ops": MAX_SYMBOLIC_OPS}

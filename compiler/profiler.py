@@ -52,6 +52,7 @@ def profile(scheme: Scheme, *, method: str = "auto") -> dict:
     if balance == "conditional" or balance is False:
         db = st.detailed_balance(scheme)
         out["detailed_balance_conditions"] = db.get("conditions", [])
+        out["detailed_balance_reason"] = db.get("reason", "")
     if scheme.implicit_symbols:
         out["note"] = "no symbols declared: every name in a rate is taken as a parameter"
     if trees is None:
