@@ -106,7 +106,7 @@ def cmd_eval(args) -> int:
 
 def cmd_formula(args) -> int:
     import sympy
-    from .pipeline import compile_scheme, formula, plan
+    from .pipeline import formula, plan
     scheme = load_model(args.model)
     states = [args.state] if args.state else list(scheme.states)
     for s in states:

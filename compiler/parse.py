@@ -18,8 +18,12 @@ import math
 import tomllib
 from fractions import Fraction
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from .errors import ModelError
+
+if TYPE_CHECKING:
+    from .model import Scheme
 
 MAX_LABEL_LENGTH = 2000
 MAX_NESTING = 60

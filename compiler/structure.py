@@ -29,7 +29,7 @@ References
 from __future__ import annotations
 
 import heapq
-from collections import Counter, deque
+from collections import Counter
 
 from .errors import ModelError
 
@@ -172,46 +172,9 @@ def cycle_basis(n: int, edges) -> list[list[int]]:
     >>> cycle_basis(3, [(0, 1), (1, 2), (2, 0)])
     [[0, 1, 2]]
     """
-    edges = _checked(n, edges)
-    nbrs: list[set[int]] = [set() for _ in range(n)]
-    for i, j in edges:
-        if i != j:
-            nbrs[i].add(j)
-            nbrs[j].add(i)
-    order = [sorted(s) for s in nbrs]
-    parent = [-1] * n
-    depth = [-1] * n
-    for root in range(n):
-        if depth[root] != -1:
-            continue
-        depth[root] = 0
-        queue = deque([root])
-        while queue:
-            a = queue.popleft()
-            for b in order[a]:
-                if depth[b] == -1:
-                    depth[b] = depth[a] + 1
-                    parent[b] = a
-                    queue.append(b)
-    cycles = []
-    for u in range(n):
-        for v in order[u]:
-            if v <= u or parent[v] == u or parent[u] == v:
-                continue
-            up_u, up_v = [u], [v]
-            a, b = u, v
-            while depth[a] > depth[b]:
-                a = parent[a]
-                up_u.append(a)
-            while depth[b] > depth[a]:
-                b = parent[b]
-                up_v.append(b)
-            while a != b:
-                a, b = parent[a], parent[b]
-                up_u.append(a)
-                up_v.append(b)
-            cycles.append(up_u[::-1] + up_v[:-1])
-    return cycles
+    from treeflux.runtime.thermo import fundamental_cycles
+
+    return [cycle for cycle, _chord in fundamental_cycles(n, _checked(n, edges))]
 
 
 # ------------------------------------------------------------------ tree counts

@@ -1,7 +1,6 @@
 """The main job end to end (scheme → front end → IR → python back end → runtime),
 checked against references from outside the project."""
 
-import itertools
 import random
 
 import mpmath

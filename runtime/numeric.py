@@ -1,0 +1,620 @@
+"""Looped subtraction-free elimination: steady states of large schemes.
+
+For a continuous-time Markov chain on states 0..n-1 with rates q(i→j) > 0
+on the edges of a directed graph, the steady state is found by state
+reduction (the Grassmann–Taksar–Heyman algorithm in continuous time [1]_).
+Eliminating state k replaces the chain by the chain censored on the other
+states:
+
+    d_k = Σ_m q(k→m),        q(i→j) += q(i→k) · q(k→j) / d_k   (i ≠ j),
+
+over the current in-neighbours i and out-neighbours j of k (edges i→i are
+dropped: the diagonal is never stored). After every state but the root r has
+gone, back-substitution in reverse elimination order gives
+
+    x_r = 1,        x_k = Σ_i x_i · q(i→k) / d_k,
+
+over the in-edges k had when it was eliminated, and p = x / Σ x. Nothing is
+subtracted anywhere, so every probability, however small, carries a relative
+error of a modest multiple of the unit roundoff independent of the
+conditioning of the generator (O'Cinneide [2]_).
+
+The structure of the elimination depends only on the graph and the order, so
+:class:`EliminationPlan` computes it once — the fill edges and a flat
+instruction tape of int32 slot indices — and then runs the tape on many
+parameter sets: in a C kernel compiled on first use (eight parameter sets
+side by side in SIMD lanes, rows split across threads), or in numpy when no
+C compiler is available.
+
+References
+----------
+.. [1] W. K. Grassmann, M. I. Taksar, D. P. Heyman, "Regenerative analysis and
+   steady state distributions for Markov chains", Oper. Res. 33 (1985)
+   1107–1116.
+.. [2] C. A. O'Cinneide, "Entrywise perturbation theory and error analysis for
+   Markov chains", Numer. Math. 65 (1993) 109–120.
+.. [3] H. M. Markowitz, "The elimination form of the inverse and its
+   application to linear programming", Management Sci. 3 (1957) 255–269.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import heapq
+from array import array
+import os
+import threading
+from pathlib import Path
+
+import numpy as np
+
+from .errors import EvaluationError
+from .kernel import _pool
+
+LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
+SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
+                               # 100×100 lattice orders in 2 s at 1024 vs 6 s at 4096, 7% more flops)
+# Split rows across threads only when each thread gets at least this much work,
+# counted as rows × flops. Measured in benches/bench_numeric.py (Q4, 646 flops):
+# 512 rows took 57 µs on one thread and 73 µs on two; 4,096 rows 434 µs on one
+# and 321 µs on two — the break-even lies near 10^6 flops per thread.
+MIN_WORK_PER_THREAD = 1_000_000
+HUGE_EXP = 128                 # back-substitution renormalises when some x exceeds 2**128
+_KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno")
+
+# ---------------------------------------------------------------- structure
+
+
+def _check_graph(n, edges):
+    """Validated (n, src, dst) with src/dst int arrays; one-line errors."""
+    try:
+        n = int(n)
+    except (TypeError, ValueError):
+        raise EvaluationError(f"number of states must be an integer, got {n!r}") from None
+    if n < 1:
+        raise EvaluationError(f"a scheme needs at least one state, got n = {n}")
+    try:
+        arr = np.asarray(edges, dtype=np.int64).reshape(-1, 2) if len(edges) else np.zeros((0, 2), np.int64)
+    except (TypeError, ValueError):
+        raise EvaluationError("edges must be a sequence of (source, target) integer pairs") from None
+    if arr.ndim != 2 or arr.shape[1] != 2 or (len(edges) and arr.shape[0] != len(edges)):
+        raise EvaluationError("edges must be a sequence of (source, target) integer pairs")
+    bad = np.flatnonzero((arr < 0).any(axis=1) | (arr >= n).any(axis=1))
+    if bad.size:
+        e = int(bad[0])
+        raise EvaluationError(f"edge {e} {tuple(arr[e].tolist())} names a state outside 0..{n - 1}")
+    loops = np.flatnonzero(arr[:, 0] == arr[:, 1])
+    if loops.size:
+        e = int(loops[0])
+        raise EvaluationError(f"edge {e} is a self-loop on state {int(arr[e, 0])}")
+    key = arr[:, 0] * n + arr[:, 1]
+    uniq, first = np.unique(key, return_index=True)
+    if uniq.size != key.size:
+        dup = np.setdiff1d(np.arange(key.size), first)[0]
+        raise EvaluationError(f"edge {int(dup)} {tuple(arr[dup].tolist())} is a duplicate")
+    return n, arr[:, 0].tolist(), arr[:, 1].tolist()
+
+
+def _terminal_states(n, out_adj):
+    """States of the unique terminal strong component (Tarjan, iterative)."""
+    index = [-1] * n
+    low = [0] * n
+    on = [False] * n
+    comp = [-1] * n
+    stack, comps, counter = [], [], 0
+    for s in range(n):
+        if index[s] >= 0:
+            continue
+        work = [(s, iter(out_adj[s]))]
+        index[s] = low[s] = counter
+        counter += 1
+        stack.append(s)
+        on[s] = True
+        while work:
+            v, it = work[-1]
+            for w in it:
+                if index[w] < 0:
+                    index[w] = low[w] = counter
+                    counter += 1
+                    stack.append(w)
+                    on[w] = True
+                    work.append((w, iter(out_adj[w])))
+                    break
+                if on[w]:
+                    low[v] = min(low[v], index[w])
+            else:
+                work.pop()
+                if work:
+                    u = work[-1][0]
+                    low[u] = min(low[u], low[v])
+                if low[v] == index[v]:
+                    members = []
+                    while True:
+                        w = stack.pop()
+                        on[w] = False
+                        comp[w] = len(comps)
+                        members.append(w)
+                        if w == v:
+                            break
+                    comps.append(members)
+    terminal = [c for c, members in enumerate(comps)
+                if all(comp[w] == c for v in members for w in out_adj[v])]
+    if len(terminal) != 1:
+        shown = "; ".join("{" + ", ".join(map(str, sorted(comps[c])[:6]))
+                          + (", ..." if len(comps[c]) > 6 else "") + "}" for c in terminal[:4])
+        raise EvaluationError(f"the scheme has {len(terminal)} terminal components ({shown}), "
+                              "so its steady state is not unique")
+    return set(comps[terminal[0]])
+
+
+def _adjacency(n, src, dst):
+    out_adj = [set() for _ in range(n)]
+    in_adj = [set() for _ in range(n)]
+    for i, j in zip(src, dst):
+        out_adj[i].add(j)
+        in_adj[j].add(i)
+    return out_adj, in_adj
+
+
+def elimination_order(n, edges, *, root=None) -> list[int]:
+    """Greedy fill-reducing elimination order for subtraction-free state reduction.
+
+    Parameters
+    ----------
+    n : int
+        Number of states.
+    edges : sequence of (int, int)
+        Directed edges (source, target); no self-loops or duplicates.
+    root : int, optional
+        The state to keep (never eliminated). By default the greedy choice
+        decides, restricted to the terminal strong component.
+
+    Returns
+    -------
+    list of int
+        A permutation of ``range(n)``; the last entry is the root.
+
+    Notes
+    -----
+    Eliminating k joins every in-neighbour i to every out-neighbour j; its
+    *fill* is the number of such pairs with i ≠ j and no edge i→j yet. Each
+    step eliminates the state of least fill, ties broken by least degree
+    (in + out), then least index: a Markowitz-style greedy [3]_ on the
+    directed structure. Scores live in a heap with lazy deletion; a popped
+    score is re-checked before it is used. Only the neighbours of the
+    eliminated state are rescored eagerly (other states can only lose fill),
+    and a state whose in-degree × out-degree exceeds ``SCORE_CAP`` is scored
+    by that product, an upper bound of its fill — an approximate variant
+    that keeps 10,000-state lattices to seconds. Deterministic.
+
+    Every state must reach the root: the scheme needs exactly one terminal
+    strong component, which contains the root; otherwise ``EvaluationError``.
+
+    Examples
+    --------
+    >>> elimination_order(3, [(0, 1), (1, 0), (1, 2), (2, 1)])
+    [0, 1, 2]
+    """
+    n, src, dst = _check_graph(n, edges)
+    out_adj, in_adj = _adjacency(n, src, dst)
+    allowed = _terminal_states(n, out_adj)
+    if root is not None:
+        root = int(root)
+        if not 0 <= root < n:
+            raise EvaluationError(f"root {root} is outside 0..{n - 1}")
+        if root not in allowed:
+            raise EvaluationError(f"root {root} cannot be reached from every state")
+    alive = [True] * n
+    remaining_allowed = len(allowed)
+
+    def score(v):
+        o, ins = out_adj[v], in_adj[v]
+        lo, li = len(o), len(ins)
+        if lo * li > SCORE_CAP:
+            return lo * li
+        f = 0
+        for i in ins:
+            f += lo - len(o & out_adj[i]) - (i in o)
+        return f
+
+    key = [None] * n
+    heap = []
+    for v in range(n):
+        if v != root:
+            key[v] = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+            heap.append(key[v])
+    heapq.heapify(heap)
+    order = []
+    kept = root
+    while heap:
+        item = heapq.heappop(heap)
+        v = item[2]
+        if not alive[v] or item != key[v]:
+            continue
+        fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+        if fresh != item:
+            key[v] = fresh
+            heapq.heappush(heap, fresh)
+            continue
+        if root is None and v in allowed and remaining_allowed == 1:
+            kept = v               # the last state of the terminal component stays
+            alive[v] = False
+            continue
+        # eliminate v
+        alive[v] = False
+        order.append(v)
+        if v in allowed:
+            remaining_allowed -= 1
+        ins, outs = in_adj[v], out_adj[v]
+        for i in ins:
+            out_adj[i].discard(v)
+        for j in outs:
+            in_adj[j].discard(v)
+        for i in ins:
+            oi = out_adj[i]
+            new = outs - oi
+            new.discard(i)
+            if new:
+                oi |= new
+                for j in new:
+                    in_adj[j].add(i)
+        touched = ins | outs
+        in_adj[v] = set()
+        out_adj[v] = set()
+        for u in touched:
+            if u != kept and alive[u]:
+                key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
+                heapq.heappush(heap, key[u])
+    order.append(kept)
+    return order
+
+
+def _symbolic(n, src, dst, order):
+    """Replay the elimination on slots; returns the tape arrays, fill and flops.
+
+    Slots 0..m-1 hold the scheme's edges in input order and fill edges follow
+    in order of creation. Each pivot's updates become triples (see
+    :func:`_triples`).
+    """
+    m = len(src)
+    out_map = [dict() for _ in range(n)]
+    in_map = [dict() for _ in range(n)]
+    for e, (i, j) in enumerate(zip(src, dst)):
+        out_map[i][j] = e
+        in_map[j][i] = e
+    n_slots = m
+    out_ptr, in_ptr, upd_ptr = [0], [0], [0]
+    out_slot, in_slot, in_src = [], [], []
+    upd = array("i")                             # 4 bytes an entry: big grids stay small
+    adds = muls = divs = 0
+    for k in order[:-1]:
+        outs = sorted(out_map[k].items())
+        ins = sorted(in_map[k].items())
+        o_states = [j for j, _ in outs]
+        out_slot.extend(s for _, s in outs)
+        in_slot.extend(s for _, s in ins)
+        in_src.extend(i for i, _ in ins)
+        for i, _ in ins:
+            del out_map[i][k]
+        for j, _ in outs:
+            del in_map[j][k]
+        adds += len(outs) - 1
+        divs += 1
+        muls += len(outs)                       # t_j = q(k→j) / d_k
+        o_set = set(o_states)
+        for i, _ in ins:
+            oi = out_map[i]
+            fresh = o_set.difference(oi)
+            fresh.discard(i)
+            for j in sorted(fresh):
+                oi[j] = n_slots
+                in_map[j][i] = n_slots
+                n_slots += 1
+            get = oi.get
+            upd.extend([get(j, -1) for j in o_states])   # i itself is never in oi: -1
+            pairs = len(o_states) - (i in o_set)
+            muls += pairs
+            adds += pairs - len(fresh)
+        # back-substitution for k: len(ins) products, their sum, one division
+        muls += len(ins)
+        adds += max(len(ins) - 1, 0)
+        divs += 1
+        out_map[k] = {}
+        in_map[k] = {}
+        out_ptr.append(len(out_slot))
+        in_ptr.append(len(in_slot))
+        upd_ptr.append(len(upd))
+    adds += n - 1                               # Σ x
+    divs += 1
+    muls += n                                   # p = x · (1/Σ x)
+    tape = {
+        "piv_state": np.asarray(order[:-1], dtype=np.int32),
+        "out_ptr": np.asarray(out_ptr, dtype=np.int64),
+        "out_slot": np.asarray(out_slot, dtype=np.int32),
+        "in_ptr": np.asarray(in_ptr, dtype=np.int64),
+        "in_slot": np.asarray(in_slot, dtype=np.int32),
+        "in_src": np.asarray(in_src, dtype=np.int32),
+    }
+    tape["upd_ptr"], tape["upd"] = _triples(tape, np.asarray(upd_ptr, dtype=np.int64),
+                                            np.frombuffer(upd, dtype=np.int32))
+    return tape, n_slots, n_slots - m, adds + muls + divs
+
+
+def _triples(tape, grid_ptr, grid):
+    """Flatten each pivot's in × out grid of target slots into (dst, a, b) triples.
+
+    Row r, column c of pivot p's grid is the update V[dst] += V[a] · V[b] with
+    a = in slot r and b = (scaled) out slot c; the i = j entries (-1) are
+    dropped. One flat loop per pivot keeps the kernel free of short inner loops.
+    """
+    n_piv = tape["piv_state"].size
+    no = np.diff(tape["out_ptr"])
+    sizes = np.diff(grid_ptr)
+    counts = np.zeros(n_piv, dtype=np.int64)
+    parts = []
+    lo = 0
+    while lo < n_piv:                      # pivots in chunks of about 2**21 grid entries
+        hi = int(np.searchsorted(grid_ptr, grid_ptr[lo] + (1 << 21), side="right"))
+        hi = min(max(hi - 1, lo + 1), n_piv)
+        g0, g1 = grid_ptr[lo], grid_ptr[hi]
+        piv = np.repeat(np.arange(lo, hi), sizes[lo:hi])
+        local = np.arange(g0, g1) - np.repeat(grid_ptr[lo:hi], sizes[lo:hi])
+        width = np.maximum(no[piv], 1)
+        grid_part = grid[g0:g1]
+        keep = grid_part >= 0
+        a = tape["in_slot"][tape["in_ptr"][piv] + local // width]
+        b = tape["out_slot"][tape["out_ptr"][piv] + local % width]
+        parts.append(np.stack([grid_part[keep], a[keep], b[keep]], axis=1).astype(np.int32))
+        counts[lo:hi] = np.bincount(piv[keep] - lo, minlength=hi - lo)
+        lo = hi
+    ptr = np.zeros(n_piv + 1, dtype=np.int64)
+    np.cumsum(counts, out=ptr[1:])
+    triples = np.concatenate(parts) if parts else np.zeros((0, 3), dtype=np.int32)
+    return ptr, np.ascontiguousarray(triples)
+
+
+# ------------------------------------------------------------------- kernel
+
+class _Tape(ctypes.Structure):
+    _fields_ = [("n", ctypes.c_int64), ("m", ctypes.c_int64), ("n_slots", ctypes.c_int64),
+                ("n_piv", ctypes.c_int64), ("root", ctypes.c_int64)] + [
+        (name, ctypes.c_void_p) for name in
+        ("piv_state", "out_ptr", "out_slot", "in_ptr", "in_slot", "in_src", "upd_ptr", "upd")]
+
+
+_LIBS: dict = {}
+_LIB_LOCK = threading.Lock()
+
+
+def kernel_source() -> str:
+    """The C source of the tape kernel (shipped beside this module)."""
+    return Path(__file__).with_name("gth_kernel.c").read_text()
+
+
+def _library():
+    """The compiled kernel's entry point, or None when no C compiler works."""
+    cc = os.environ.get("CC", "cc")
+    with _LIB_LOCK:
+        if cc not in _LIBS:
+            from .cache import CompileError, shared_library
+            try:
+                path = shared_library(kernel_source(), flags=_KERNEL_FLAGS, name="gth_kernel")
+                fn = ctypes.CDLL(str(path)).gth_solve
+            except (CompileError, OSError):
+                fn = None
+            else:
+                fn.restype = ctypes.c_int64
+                fn.argtypes = [ctypes.POINTER(_Tape), ctypes.c_void_p, ctypes.c_void_p,
+                               ctypes.c_int64, ctypes.c_int64, ctypes.c_void_p]
+            _LIBS[cc] = fn
+        return _LIBS[cc]
+
+
+# --------------------------------------------------------------------- plan
+
+class EliminationPlan:
+    """Subtraction-free steady-state solver for one graph, many rate sets.
+
+    Parameters
+    ----------
+    n : int
+        Number of states.
+    edges : sequence of (int, int)
+        Directed edges; column e of the rates is the rate of ``edges[e]``.
+    order : sequence of int, optional
+        Elimination order, a permutation of ``range(n)`` whose last entry is
+        the kept root; default :func:`elimination_order`.
+    backend : {"c", "numpy"}, optional
+        Force a kernel; by default the C kernel, compiled on first use, or
+        numpy if no C compiler works.
+
+    Attributes
+    ----------
+    order : list of int
+    fill : int
+        Edges the elimination creates that the scheme did not have.
+    flops : int
+        Additions, multiplications and divisions per parameter set
+        (forward elimination, back-substitution and normalisation).
+    backend : str
+        ``"c"`` or ``"numpy"``.
+
+    Notes
+    -----
+    State reduction of Grassmann, Taksar & Heyman [1]_ in continuous time
+    (see the module docstring); entrywise relative accuracy follows from the
+    absence of subtraction [2]_. Back-substitution renormalises by powers of
+    two when a ratio x_k = ρ_k/ρ_root would exceed 2**128, so rates spread
+    over hundreds of orders of magnitude give finite results.
+    """
+
+    def __init__(self, n, edges, *, order=None, backend=None):
+        n, src, dst = _check_graph(n, edges)
+        if order is None:
+            order = elimination_order(n, edges)
+        else:
+            order = [int(v) for v in order]
+            if sorted(order) != list(range(n)):
+                raise EvaluationError(f"order must be a permutation of 0..{n - 1}")
+            out_adj, _ = _adjacency(n, src, dst)
+            if order[-1] not in _terminal_states(n, out_adj):
+                raise EvaluationError(f"root {order[-1]} (last in order) cannot be reached from every state")
+        self.n, self.m = n, len(src)
+        self.edges = list(zip(src, dst))
+        self.order = order
+        self._tape, self.n_slots, self.fill, self.flops = _symbolic(n, src, dst, order)
+        self.max_pairs = int(max(np.diff(self._tape["upd_ptr"]).max(initial=0), 1))
+        if backend not in (None, "c", "numpy"):
+            raise EvaluationError(f"backend must be 'c' or 'numpy', got {backend!r}")
+        self._requested = backend
+        self._fn = None
+        self._struct = None
+
+    @property
+    def backend(self) -> str:
+        """``"c"`` when the compiled kernel is (or will be) used, else ``"numpy"``."""
+        self._prepare()
+        return "c" if self._fn is not None else "numpy"
+
+    def _prepare(self):
+        if self._struct is not None or self._requested == "numpy":
+            return
+        fn = _library()
+        if fn is None:
+            if self._requested == "c":
+                raise EvaluationError("backend 'c' requested but no working C compiler was found")
+            self._requested = "numpy"
+            return
+        t = self._tape
+        self._struct = _Tape(self.n, self.m, self.n_slots, self.n - 1, self.order[-1],
+                             *(t[k].ctypes.data for k in ("piv_state", "out_ptr", "out_slot", "in_ptr",
+                                                          "in_slot", "in_src", "upd_ptr", "upd")))
+        self._fn = fn
+
+    # ------------------------------------------------------------ evaluation
+    def steady_state(self, rates, *, out=None, threads=None) -> np.ndarray:
+        """Steady-state probabilities for each row of rates.
+
+        Parameters
+        ----------
+        rates : array_like, shape (N, m)
+            Positive finite rates; column e belongs to ``edges[e]``.
+        out : ndarray, shape (N, n), optional
+            C-contiguous float64 buffer to write into (reuse it in loops).
+        threads : int, optional
+            Upper bound on threads (default ``os.cpu_count()``); rows are
+            split only when each thread gets enough work.
+
+        Returns
+        -------
+        ndarray, shape (N, n)
+        """
+        try:
+            rates = np.ascontiguousarray(rates, dtype=np.float64)
+        except (TypeError, ValueError):
+            raise EvaluationError("rates must be a numeric (N, m) array") from None
+        if rates.ndim != 2 or rates.shape[1] != self.m:
+            raise EvaluationError(f"rates must have shape (N, {self.m}), got {rates.shape}")
+        N = rates.shape[0]
+        if out is None:
+            out = np.empty((N, self.n))
+        elif (not isinstance(out, np.ndarray) or out.shape != (N, self.n) or out.dtype != np.float64
+              or not out.flags.c_contiguous):
+            raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(N, self.n)}")
+        if N == 0:
+            return out
+        self._prepare()
+        if self._fn is not None:
+            self._run_c(rates, out, threads)
+        else:
+            self._run_numpy(rates, out)
+        return out
+
+    def _raise(self, kind, row, what, rates):
+        if kind == 1:
+            i, j = self.edges[what]
+            raise EvaluationError(f"row {row}: rate of edge {what} ({i}->{j}) must be positive and "
+                                  f"finite, got {rates[row, what]!r}")
+        if kind == 2:
+            raise EvaluationError(f"row {row}: the exit rate of state {what} vanished during elimination: "
+                                  "the rates leave the scheme not strongly connected (or underflow float64)")
+        if kind == 3:
+            raise EvaluationError(f"row {row}: the steady state overflows float64 near state {what}")
+        raise EvaluationError(f"row {row}: out of memory for the elimination workspace")
+
+    def _run_c(self, rates, out, threads):
+        N = rates.shape[0]
+        blocks = -(-N // LANES)
+        limit = threads or os.cpu_count() or 1
+        count = int(max(1, min(limit, blocks, N * self.flops // MIN_WORK_PER_THREAD)))
+        cuts = [min(N, LANES * (blocks * c // count)) for c in range(count + 1)]
+        tape = ctypes.byref(self._struct)
+        rp, op = rates.ctypes.data, out.ctypes.data
+
+        def run(a, b):
+            err = np.zeros(3, dtype=np.int64)
+            status = self._fn(tape, rp, op, a, b, err.ctypes.data)
+            return tuple(err) if status else None
+
+        if count == 1:
+            results = [run(0, N)]
+        else:
+            results = list(_pool().map(run, cuts[:-1], cuts[1:]))
+        bad = [r for r in results if r is not None]
+        if bad:
+            kind, row, what = min(bad, key=lambda r: r[1])
+            self._raise(int(kind), int(row), int(what), rates)
+
+    def _run_numpy(self, rates, out):
+        ok = (rates > 0) & (rates <= np.finfo(np.float64).max)
+        if not ok.all():
+            row, e = np.argwhere(~ok)[0]
+            self._raise(1, int(row), int(e), rates)
+        N = rates.shape[0]
+        chunk = max(1, (1 << 22) // (3 * self.max_pairs + self.n_slots))
+        for a in range(0, N, chunk):
+            b = min(N, a + chunk)
+            out[a:b] = self._numpy_block(rates[a:b], a)
+
+    def _numpy_block(self, rates, row0):
+        t = self._tape
+        n, m, N = self.n, self.m, rates.shape[0]
+        big = np.finfo(np.float64).max
+        V = np.zeros((self.n_slots + 1, N))
+        V[:m] = rates.T
+        D = np.empty((n - 1, N))
+        op, ip, up = t["out_ptr"], t["in_ptr"], t["upd_ptr"]
+        for p in range(n - 1):
+            oo = t["out_slot"][op[p]:op[p + 1]]
+            d = V[oo].sum(axis=0)
+            bad = ~((d > 0) & (d <= big))
+            if bad.any():
+                self._raise(2, row0 + int(np.argmax(bad)), int(t["piv_state"][p]), None)
+            D[p] = d
+            w = V[oo] * (1.0 / d)
+            V[oo] = w
+            tri = t["upd"][up[p]:up[p + 1]]
+            if tri.size:
+                V[tri[:, 0]] += V[tri[:, 1]] * V[tri[:, 2]]
+        X = np.zeros((n, N))
+        root = self.order[-1]
+        X[root] = 1.0
+        huge = 2.0 ** HUGE_EXP
+        done = [root]
+        for p in range(n - 2, -1, -1):
+            k = int(t["piv_state"][p])
+            a, b = ip[p], ip[p + 1]
+            acc = (X[t["in_src"][a:b]] * V[t["in_slot"][a:b]]).sum(axis=0)
+            x = acc / D[p]
+            cols = np.flatnonzero(~(x <= huge))
+            if cols.size:
+                if not np.isfinite(acc[cols]).all():
+                    c = cols[~np.isfinite(acc[cols])][0]
+                    self._raise(3, row0 + int(c), k, None)
+                e = (np.frexp(acc[cols])[1] - np.frexp(D[p, cols])[1]).astype(np.int64)
+                sel = np.ix_(done, cols)
+                X[sel] = np.ldexp(X[sel], -e)
+                x[cols] = np.ldexp(acc[cols], -e) / D[p, cols]
+            X[k] = x
+            done.append(k)
+        return (X * (1.0 / X.sum(axis=0))).T
