@@ -43,17 +43,25 @@ def parse_sets(items) -> dict[str, float]:
     return values
 
 
-def emit_json(obj) -> None:
-    sys.stdout.write(json.dumps(obj, indent=2, default=_json_default) + "\n")
-
-
-def _json_default(o):
+def json_clean(obj):
+    """JSON-safe copy: numpy scalars and arrays to Python, non-finite floats to None."""
     import numpy as np
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    return str(o)
+    if isinstance(obj, dict):
+        return {str(k): json_clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return json_clean(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+def emit_json(obj) -> None:
+    """One JSON object on stdout (strict JSON: no NaN or Infinity)."""
+    sys.stdout.write(json.dumps(json_clean(obj), indent=2, allow_nan=False) + "\n")
 
 
 # ---------------------------------------------------------------- commands

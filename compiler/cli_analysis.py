@@ -11,7 +11,6 @@ plots.
 
 from __future__ import annotations
 
-import json
 import math
 import sys
 from functools import partial
@@ -44,24 +43,8 @@ def _values(args) -> dict:
     return _cli().parse_sets(getattr(args, "set", None))
 
 
-def _clean(obj):
-    """JSON-safe copy: numpy scalars and arrays to Python, non-finite floats to None."""
-    import numpy as np
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
-
-
 def _emit(obj) -> None:
-    sys.stdout.write(json.dumps(_clean(obj), indent=2, allow_nan=False) + "\n")
+    _cli().emit_json(obj)
 
 
 def parse_range(text: str) -> tuple[float, float]:

@@ -10,6 +10,7 @@ and refuses requests that would exhaust memory or time, before any work.
 from __future__ import annotations
 
 import importlib
+import json
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -45,6 +46,7 @@ MAX_FORMULA_TREES = 20_000
 class Plan:
     method: str
     reasons: dict = field(default_factory=dict)
+    numeric: object = None  # the EliminationPlan of the whole scheme, when it is one component
 
 
 def _structure():
@@ -71,6 +73,7 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
         reasons["tree_factors"] = tree_factors
     flops = 0
     fill = 0
+    whole = None
     for comp in comps:
         local = {s: a for a, s in enumerate(comp)}
         sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
@@ -78,6 +81,8 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             p = EliminationPlan(len(comp), sub)
             flops += p.flops
             fill += p.fill
+            if len(comp) == n:
+                whole = p
     reasons["elimination_flops"] = flops
     reasons["fill"] = fill
     if not st.is_reversible(n, edges):
@@ -106,7 +111,7 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             "numeric": f"elimination needs {flops} flops, beyond the straight-line limit "
                        f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination",
         }[chosen]
-        return Plan(chosen, reasons)
+        return Plan(chosen, reasons, whole)
     if method == "trees":
         if tree_factors is None or tree_factors > MAX_TREE_FACTORS:
             shown = "more than can be counted here" if tree_factors is None else f"{tree_factors:,}"
@@ -124,7 +129,7 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     elif method == "numeric" and len(comps) > 1:
         raise ModelError(f"{scheme.origin}: the numeric path needs one terminal component; "
                          f"this scheme has {len(comps)}")
-    return Plan(method, reasons)
+    return Plan(method, reasons, whole)
 
 
 def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
@@ -160,6 +165,7 @@ def _backend(name: str):
 
 def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "python",
                    jacobian: bool = False, log_jacobian: bool = False,
+                   input_derivatives: str | None = None,
                    name: str = "treeflux_model") -> CompiledModel:
     """Compile a scheme into a :class:`CompiledModel`.
 
@@ -170,7 +176,11 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     backend : {"python", "c", "cython", "llvm"}
         Code generator for the straight-line kernel.
     jacobian : bool
-        Also compile ∂p/∂θ for every symbol (``log_jacobian``: ∂p/∂log θ).
+        Also compile ∂p/∂θ for every symbol (``log_jacobian``: ∂p/∂log θ),
+        and the same for the observables.
+    input_derivatives : str, optional
+        Name of one input: also compile the first and second derivatives of
+        p (and of the observables) along it, for response-curve analysis.
     """
     timings = {}
     t0 = time.perf_counter()
@@ -184,8 +194,9 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     obs_names = tuple(scheme.observables)
     weights: list = [[0.0] * len(obs_names) for _ in range(n)]
     report: list = []
+    deriv_report: list = []
     if chosen.method == "numeric":
-        if jacobian:
+        if jacobian or input_derivatives:
             raise ModelError(f"{scheme.origin}: derivatives need a straight-line method; this scheme "
                              f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
         kernel, groups = None, {}
@@ -209,14 +220,9 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         t0 = time.perf_counter()
         fn = _simplify(kept, report)
         timings["simplify"] = time.perf_counter() - t0
-        if jacobian:
-            if "p" not in fn.groups:
-                raise ModelError(f"{scheme.origin}: derivatives need a unique steady state")
-            from .simplify import differentiate
-            t0 = time.perf_counter()
-            fn = differentiate(fn, group="p", log=log_jacobian)
-            fn = _simplify(fn, None)
-            timings["derivatives"] = time.perf_counter() - t0
+        if jacobian or input_derivatives:
+            fn = _derivatives(scheme, fn, jacobian=jacobian, log=log_jacobian,
+                              along=input_derivatives, timings=timings, report=deriv_report)
         t0 = time.perf_counter()
         kernel = back.build(ir.compact(fn), name=name)
         timings["backend"] = time.perf_counter() - t0
@@ -233,12 +239,39 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         method=chosen.method, backend=backend if kernel is not None else "numeric",
         log_jacobian=log_jacobian,
         tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0)
-    profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report, "timings": timings}
+    profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report,
+               "derivative_passes": deriv_report, "timings": timings}
     model = CompiledModel(info, kernel, label_kernel,
                           formula=lambda state, **kw: formula(scheme, state, method=chosen.method, **kw),
                           emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=chosen.method),
                           profile=profile)
+    if kernel is None and chosen.numeric is not None:
+        model.plan = chosen.numeric
     return model
+
+
+def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, along: str | None,
+                 timings: dict, report: list) -> ir.Function:
+    """Add derivative groups (``jac``, ``obs_jac``, ``d1``, ``d2``, ``obs_d1``, ``obs_d2``)."""
+    from .simplify import differentiate, input_derivatives
+
+    if "p" not in fn.groups:
+        raise ModelError(f"{scheme.origin}: derivatives need a unique steady state "
+                         f"(the scheme has several terminal components)")
+    t0 = time.perf_counter()
+    if jacobian:
+        fn = differentiate(fn, group="p", log=log)
+        if "obs" in fn.groups:
+            fn = differentiate(fn, group="obs", log=log)
+    if along is not None:
+        names = [s.name for s in scheme.inputs]
+        if along not in names:
+            raise ModelError(f"{scheme.origin}: input_derivatives names {along!r}, which is not an input "
+                             f"(inputs: {', '.join(names) or 'none'})")
+        fn = input_derivatives(fn, input=scheme.symbols.index(along), order=2)
+    fn = _simplify(fn, report)
+    timings["derivatives"] = time.perf_counter() - t0
+    return fn
 
 
 def _label_function(scheme: Scheme) -> ir.Function:
@@ -301,6 +334,13 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
     files = dict(back.emit(fn, name=name))
     if hasattr(back, "embed_example"):
         files.update(back.embed_example(fn, name=name))
+    # Names stay out of generated code; this data file says what each column is.
+    layout = {"scheme": scheme.name, "symbols": list(scheme.symbols),
+              "outputs": {key: list(scheme.states) if key == "p" else
+                          [f"{c}:{st}" for c in range(len(fn.outputs) // len(scheme.states))
+                           for st in scheme.states]},
+              "note": "outputs are model predictions of the scheme, not measurements"}
+    files[f"{name}.layout.json"] = json.dumps(layout, indent=2, sort_keys=True) + "\n"
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     written = []

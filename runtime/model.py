@@ -60,7 +60,7 @@ class CompiledModel:
         self.label_kernel = label_kernel
         self._formula = formula
         self._emitter = emitter
-        self._plan = None
+        self.plan = None  # EliminationPlan of the looped numeric path, built on first use
         self.profile = profile or {}
 
     # ------------------------------------------------------------ metadata
@@ -195,10 +195,10 @@ class CompiledModel:
     def _numeric(self, arr: np.ndarray) -> np.ndarray:
         from .numeric import EliminationPlan
 
-        if self._plan is None:
-            self._plan = EliminationPlan(len(self.states), self.info.edges)
+        if self.plan is None:
+            self.plan = EliminationPlan(len(self.states), self.info.edges)
         rates = self.label_kernel(arr)
-        return self._plan.steady_state(rates)
+        return self.plan.steady_state(rates)
 
     def basis(self, X, *, threads=None) -> np.ndarray:
         """One steady state per terminal component: (N, n_components, n_states)."""
@@ -242,6 +242,26 @@ class CompiledModel:
         a, b = self.info.groups["jac"]
         J = self._outputs(arr, threads)[:, a:b]
         return J.reshape(arr.shape[0], len(self.states), len(self.symbols))
+
+    def observable_jacobian(self, X, *, threads=None) -> np.ndarray:
+        """∂O_k/∂θ_j as (N, n_observables, n_symbols) when compiled with jacobian."""
+        if "obs_jac" not in self.info.groups:
+            raise EvaluationError("compile with jacobian=True (and declare observables) for their gradients")
+        arr = self.as_array(X)
+        a, b = self.info.groups["obs_jac"]
+        J = self._outputs(arr, threads)[:, a:b]
+        return J.reshape(arr.shape[0], len(self.observable_names), len(self.symbols))
+
+    def input_derivatives(self, X, *, observables: bool = False, threads=None):
+        """(first, second) derivatives along the input named at compile time,
+        each (N, n_states), or (N, n_observables) with ``observables=True``."""
+        prefix = "obs_" if observables else ""
+        if prefix + "d1" not in self.info.groups:
+            raise EvaluationError("compile with input_derivatives=NAME to get derivatives along an input")
+        self._require_single()
+        out = self._outputs(self.as_array(X), threads)
+        (a1, b1), (a2, b2) = self.info.groups[prefix + "d1"], self.info.groups[prefix + "d2"]
+        return np.ascontiguousarray(out[:, a1:b1]), np.ascontiguousarray(out[:, a2:b2])
 
     # ------------------------------------------------------------ closed forms and code
     def formula(self, state: str, **options):

@@ -54,8 +54,9 @@ def test_formula_and_compile(tmp_path, capsys):
     assert main(["formula", str(ENZYME), "--state", "ES"]) == 0
     assert "rho[ES] = S*k_on*ki_off" in capsys.readouterr().out
     assert main(["compile", str(ENZYME), "--target", "python", "-o", str(tmp_path)]) == 0
-    files = list(tmp_path.iterdir())
-    assert len(files) == 1 and files[0].suffix == ".py"
+    files = sorted(p.name for p in tmp_path.iterdir())
+    stem = "hydrolase_with_a_competitive_inhibitor"
+    assert files == [f"{stem}.layout.json", f"{stem}.py"]
 
 
 @pytest.mark.parametrize("argv, fragment", [
