@@ -166,7 +166,7 @@ def _backend(name: str):
 def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "python",
                    jacobian: bool = False, log_jacobian: bool = False,
                    input_derivatives: str | None = None,
-                   name: str = "treeflux_model") -> CompiledModel:
+                   name: str = "treeflux_model", cache: bool = True) -> CompiledModel:
     """Compile a scheme into a :class:`CompiledModel`.
 
     Parameters
@@ -181,16 +181,30 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     input_derivatives : str, optional
         Name of one input: also compile the first and second derivatives of
         p (and of the observables) along it, for response-curve analysis.
+    cache : bool
+        Reuse (and store) the compiled model in the on-disk cache
+        (:mod:`treeflux.compiler.artifacts`).
     """
+    from . import artifacts
+
     timings = {}
+    back = _backend(backend)
+    scheme.validate()
+    label_fn = _label_function(scheme)
+    label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
+    options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
+               "input_derivatives": input_derivatives, "name": name}
+    key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
+    hit = artifacts.load(key) if cache else None
+    if hit is not None:
+        kernel, info, profile = hit
+        profile["cache"] = "hit"
+        return _model(scheme, info, kernel, label_kernel, profile)
     t0 = time.perf_counter()
     chosen = plan(scheme, method)
     timings["plan"] = time.perf_counter() - t0
-    back = _backend(backend)
     n = len(scheme.states)
     edges = scheme.edge_list()
-    label_fn = _label_function(scheme)
-    label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
     obs_names = tuple(scheme.observables)
     weights: list = [[0.0] * len(obs_names) for _ in range(n)]
     report: list = []
@@ -241,13 +255,20 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0)
     profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report,
                "derivative_passes": deriv_report, "timings": timings}
-    model = CompiledModel(info, kernel, label_kernel,
-                          formula=lambda state, **kw: formula(scheme, state, method=chosen.method, **kw),
-                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=chosen.method),
-                          profile=profile)
+    if cache and kernel is not None:
+        artifacts.store(key, kernel, info, profile)
+    model = _model(scheme, info, kernel, label_kernel, profile)
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
+
+
+def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
+    method = info.method
+    return CompiledModel(info, kernel, label_kernel,
+                         formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
+                         emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
+                         profile=profile)
 
 
 def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, along: str | None,

@@ -65,7 +65,8 @@ def _digest(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def _valid(entry: Path) -> bool:
+def is_valid(entry: Path) -> bool:
+    """True if ``entry`` exists and every file matches its manifest hash."""
     try:
         manifest = json.loads((entry / MANIFEST).read_text())
         return all(_digest(entry / name) == sha for name, sha in manifest["files"].items())
@@ -89,10 +90,10 @@ def fetch(key: str, build) -> Path:
     or corrupt. ``build`` writes its files into the directory it is given."""
     top = root()
     entry = top / key
-    if _valid(entry):
+    if is_valid(entry):
         return entry
     with _locked(top / ".locks" / f"{key}.lock"):
-        if _valid(entry):
+        if is_valid(entry):
             return entry
         work = Path(tempfile.mkdtemp(prefix=f".build-{key[:12]}-", dir=top))
         try:

@@ -96,3 +96,36 @@ def test_shared_library_and_cli(cache_dir, capsys):
 def test_key_depends_on_everything():
     assert cache.make_key("a", "b") != cache.make_key("a", "c")
     assert cache.make_key("a", "b") == cache.make_key("a", "b")
+
+
+def test_compiled_model_cache_hit_skips_the_compiler(cache_dir, monkeypatch):
+    import numpy as np
+    import treeflux.compiler.pipeline as pipeline
+    from treeflux.compiler import compile_scheme
+    from .schemes import independent_sites
+
+    s = independent_sites(2)
+    first = compile_scheme(s, method="elimination", backend="c", jacobian=True)
+    assert first.profile.get("cache") is None
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("front end ran on a cache hit")
+
+    monkeypatch.setattr(pipeline, "build", refuse)
+    again = compile_scheme(s, method="elimination", backend="c", jacobian=True)
+    assert again.profile["cache"] == "hit" and again.method == "elimination"
+    X = np.array([[1.0, 2.0, 3.0, 4.0], [0.5, 0.1, 9.0, 2.0]])
+    assert np.array_equal(first.steady_state(X), again.steady_state(X))
+    assert np.array_equal(first.jacobian(X), again.jacobian(X))
+    # A different option is a different entry: the front end must run.
+    with pytest.raises(AssertionError, match="front end ran"):
+        compile_scheme(s, method="elimination", backend="c", jacobian=False)
+    # A corrupt entry is not trusted: it is rebuilt.
+    from treeflux.compiler.artifacts import model_key
+    options = {"jacobian": True, "log_jacobian": False, "input_derivatives": None, "name": "treeflux_model"}
+    entry = cache_dir / model_key(s, method="elimination", backend="c", options=options)
+    (entry / "model.json").write_text("{}")
+    monkeypatch.undo()
+    rebuilt = compile_scheme(s, method="elimination", backend="c", jacobian=True)
+    assert rebuilt.profile.get("cache") is None
+    assert np.array_equal(rebuilt.steady_state(X), first.steady_state(X))
