@@ -111,6 +111,7 @@ def test_compiled_model_cache_hit_skips_the_compiler(cache_dir, monkeypatch):
     def refuse(*args, **kwargs):
         raise AssertionError("front end ran on a cache hit")
 
+    original = pipeline.build
     monkeypatch.setattr(pipeline, "build", refuse)
     again = compile_scheme(s, method="elimination", backend="c", jacobian=True)
     assert again.profile["cache"] == "hit" and again.method == "elimination"
@@ -125,7 +126,7 @@ def test_compiled_model_cache_hit_skips_the_compiler(cache_dir, monkeypatch):
     options = {"jacobian": True, "log_jacobian": False, "input_derivatives": None, "name": "treeflux_model"}
     entry = cache_dir / model_key(s, method="elimination", backend="c", options=options)
     (entry / "model.json").write_text("{}")
-    monkeypatch.undo()
+    monkeypatch.setattr(pipeline, "build", original)
     rebuilt = compile_scheme(s, method="elimination", backend="c", jacobian=True)
     assert rebuilt.profile.get("cache") is None
     assert np.array_equal(rebuilt.steady_state(X), first.steady_state(X))
