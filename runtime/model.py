@@ -61,6 +61,7 @@ class CompiledModel:
         self._formula = formula
         self._emitter = emitter
         self.plan = None  # EliminationPlan of the looped numeric path, built on first use
+        self._zero_plans: dict = {}  # plans for rows whose zero rates remove edges
         self.profile = profile or {}
 
     # ------------------------------------------------------------ metadata
@@ -187,18 +188,65 @@ class CompiledModel:
     def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
         """Rows where a tree product of labels scaled by their maximum could
         fall below the normal float64 range: (min/max)^(n−1) < 1e-290. Those
-        rows go to the looped elimination, which works on ratios."""
+        rows go to the looped elimination, which works on ratios. (Zero rates
+        are absent edges, not small ones.)"""
         rates = self.label_kernel(arr)
-        spread = np.log10(rates.max(axis=1)) - np.log10(rates.min(axis=1))
-        return self.info.tree_edges * spread > 290.0
+        positive = np.where(rates > 0, rates, np.nan)
+        with np.errstate(all="ignore"):
+            spread = np.log10(np.nanmax(positive, axis=1)) - np.log10(np.nanmin(positive, axis=1))
+        return self.info.tree_edges * np.nan_to_num(spread) > 290.0
 
     def _numeric(self, arr: np.ndarray) -> np.ndarray:
+        """The looped subtraction-free elimination on every row of ``arr``.
+
+        A zero rate is an absent edge (an input concentration of zero): rows
+        with zero rates are solved on the graph of their positive edges, one
+        plan per pattern of zeros, provided that graph still has a unique
+        terminal component (the others get probability zero)."""
         from .numeric import EliminationPlan
 
         if self.plan is None:
             self.plan = EliminationPlan(len(self.states), self.info.edges)
         rates = self.label_kernel(arr)
-        return self.plan.steady_state(rates)
+        zero = rates == 0
+        rows_with_zero = zero.any(axis=1)
+        if not rows_with_zero.any():
+            return self.plan.steady_state(rates)
+        P = np.zeros((len(arr), len(self.states)))
+        if (~rows_with_zero).any():
+            P[~rows_with_zero] = self.plan.steady_state(rates[~rows_with_zero])
+        for pattern in np.unique(zero[rows_with_zero], axis=0):
+            rows = np.flatnonzero(rows_with_zero & (zero == pattern).all(axis=1))
+            comp, local_edges, keep = self._positive_subgraph(pattern, int(rows[0]))
+            sub = self._zero_plans.get(pattern.tobytes())
+            if sub is None:
+                sub = self._zero_plans[pattern.tobytes()] = (
+                    EliminationPlan(len(comp), local_edges) if len(comp) > 1 else None)
+            if sub is None:
+                P[rows, comp[0]] = 1.0
+            else:
+                P[np.ix_(rows, comp)] = sub.steady_state(rates[np.ix_(rows, keep)])
+        return P
+
+    def _positive_subgraph(self, zero_edges: np.ndarray, row: int):
+        from .numeric import _terminal_states
+
+        n = len(self.states)
+        out_adj = [[] for _ in range(n)]
+        for e, (i, j) in enumerate(self.info.edges):
+            if not zero_edges[e]:
+                out_adj[i].append(j)
+        try:
+            comp = sorted(_terminal_states(n, out_adj))
+        except EvaluationError:
+            names = [f"{self.states[i]}->{self.states[j]}"
+                     for e, (i, j) in enumerate(self.info.edges) if zero_edges[e]]
+            raise EvaluationError(f"row {row}: with a zero rate on {', '.join(names[:4])} the scheme has "
+                                  "several terminal components, so its steady state is not unique") from None
+        local = {s: a for a, s in enumerate(comp)}
+        keep = [e for e, (i, j) in enumerate(self.info.edges)
+                if not zero_edges[e] and i in local and j in local]
+        return comp, [(local[self.info.edges[e][0]], local[self.info.edges[e][1]]) for e in keep], keep
 
     def basis(self, X, *, threads=None) -> np.ndarray:
         """One steady state per terminal component: (N, n_components, n_states)."""

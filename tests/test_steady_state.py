@@ -228,9 +228,9 @@ def test_transient_states_get_zero():
 def test_python_emit_is_deterministic_and_standalone(tmp_path):
     s = independent_sites(2)
     m = compile_scheme(s)
-    a = [p.read_bytes() for p in m.emit("python", tmp_path / "a")]
-    b = [p.read_bytes() for p in m.emit("python", tmp_path / "b")]
-    assert a == b
+    a = [p.read_bytes() for p in m.emit("python", tmp_path / "a") if p.suffix == ".py"]
+    b = [p.read_bytes() for p in m.emit("python", tmp_path / "b") if p.suffix == ".py"]
+    assert a == b and len(a) == 1
     src = a[0].decode()
     imports = [ln for ln in src.splitlines() if ln.startswith(("import", "from"))]
     assert imports == ["import numpy as np"]
@@ -249,3 +249,36 @@ def test_formula_matches_trees():
     assert sympy.simplify(m.formula("ES") - k1 * S) == 0
     assert sympy.simplify(m.formula("E") - (km1 + k2)) == 0
     assert sympy.simplify(m.formula("ES", expand=True) - k1 * S) == 0
+
+
+@pytest.mark.parametrize("method", ["trees", "elimination", "equilibrium", "numeric"])
+def test_zero_concentrations_remove_edges(method):
+    # Competitive inhibition (common practice; rapid-equilibrium binding
+    # polynomial): with D = 1 + S/K_M + I/K_I, p_E = 1/D, p_ES = (S/K_M)/D,
+    # p_EI = (I/K_I)/D, K_M = (k_off + k_cat)/k_on, K_I = ki_off/ki_on. A zero
+    # concentration is an absent edge; the state it fed gets probability 0.
+    from pathlib import Path
+    from treeflux.compiler import load
+    s = load(Path(__file__).resolve().parent.parent / "examples" / "enzyme_competitive_inhibitor.toml")
+    m = compile_scheme(s, method=method)
+    S = np.array([0.0, 2.0, 0.0, 5.0])
+    I = np.array([0.0, 0.0, 3.0, 1.0])
+    P = m.steady_state({"S": S, "I": I})
+    v = s.defaults()
+    KM = (v["k_off"] + v["k_cat"]) / v["k_on"]
+    KI = v["ki_off"] / v["ki_on"]
+    D = 1 + S / KM + I / KI
+    np.testing.assert_allclose(P, np.stack([1 / D, S / KM / D, I / KI / D], axis=1), rtol=1e-14, atol=0)
+
+
+def test_zero_rate_leaving_two_terminal_components_is_refused():
+    s = Scheme()
+    s.add_parameter("a")
+    s.add_input("c")
+    s.add_edge("A", "B", "a*c")
+    s.add_edge("B", "A", "a")
+    s.add_edge("B", "C", "a*c")
+    s.add_edge("C", "B", "a*c")
+    m = compile_scheme(s, method="elimination")
+    with pytest.raises(EvaluationError, match="several terminal components"):
+        m.steady_state({"a": 1.0, "c": 0.0})
