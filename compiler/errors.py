@@ -1,6 +1,6 @@
 """Error types. Every refusal carries a one-line message naming what is wrong."""
 
-from treeflux.runtime.errors import EvaluationError, TreefluxError  # noqa: F401  (re-exported)
+from treeflux.runtime.errors import TreefluxError
 
 
 class ModelError(TreefluxError, ValueError):

@@ -31,6 +31,8 @@ from __future__ import annotations
 import heapq
 from collections import Counter
 
+from treeflux.runtime import graph
+
 from .errors import ModelError
 
 __all__ = [
@@ -58,14 +60,6 @@ def _checked(n, edges) -> list[tuple[int, int]]:
     return out
 
 
-def _successors(n: int, edges) -> list[list[int]]:
-    succ: list[set[int]] = [set() for _ in range(n)]
-    for i, j in edges:
-        if i != j:
-            succ[i].add(j)
-    return [sorted(s) for s in succ]
-
-
 # ------------------------------------------------------------------ components
 
 def strongly_connected_components(n: int, edges) -> list[list[int]]:
@@ -76,53 +70,7 @@ def strongly_connected_components(n: int, edges) -> list[list[int]]:
     >>> strongly_connected_components(4, [(0, 1), (1, 0), (1, 2), (3, 2)])
     [[0, 1], [2], [3]]
     """
-    edges = _checked(n, edges)
-    succ = _successors(n, edges)
-    index = [-1] * n
-    low = [0] * n
-    on_stack = [False] * n
-    stack: list[int] = []
-    comps: list[list[int]] = []
-    counter = 0
-    for start in range(n):
-        if index[start] != -1:
-            continue
-        index[start] = low[start] = counter
-        counter += 1
-        stack.append(start)
-        on_stack[start] = True
-        work = [[start, 0]]
-        while work:
-            frame = work[-1]
-            v, pos = frame
-            if pos < len(succ[v]):
-                frame[1] = pos + 1
-                w = succ[v][pos]
-                if index[w] == -1:
-                    index[w] = low[w] = counter
-                    counter += 1
-                    stack.append(w)
-                    on_stack[w] = True
-                    work.append([w, 0])
-                elif on_stack[w] and index[w] < low[v]:
-                    low[v] = index[w]
-                continue
-            work.pop()
-            if work:
-                u = work[-1][0]
-                if low[v] < low[u]:
-                    low[u] = low[v]
-            if low[v] == index[v]:
-                comp = []
-                while True:
-                    w = stack.pop()
-                    on_stack[w] = False
-                    comp.append(w)
-                    if w == v:
-                        break
-                comps.append(sorted(comp))
-    comps.sort(key=lambda c: c[0])
-    return comps
+    return graph.strongly_connected_components(n, _checked(n, edges))
 
 
 def terminal_components(n: int, edges) -> list[list[int]]:
@@ -135,17 +83,7 @@ def terminal_components(n: int, edges) -> list[list[int]]:
     >>> terminal_components(3, [(0, 1), (0, 2)])
     [[1], [2]]
     """
-    edges = _checked(n, edges)
-    comps = strongly_connected_components(n, edges)
-    owner = [0] * n
-    for c, comp in enumerate(comps):
-        for s in comp:
-            owner[s] = c
-    leaves = [True] * len(comps)
-    for i, j in edges:
-        if owner[i] != owner[j]:
-            leaves[owner[i]] = False
-    return [comp for c, comp in enumerate(comps) if leaves[c]]
+    return graph.terminal_components(n, _checked(n, edges))
 
 
 def is_reversible(n: int, edges) -> bool:
@@ -172,9 +110,7 @@ def cycle_basis(n: int, edges) -> list[list[int]]:
     >>> cycle_basis(3, [(0, 1), (1, 2), (2, 0)])
     [[0, 1, 2]]
     """
-    from treeflux.runtime.thermo import fundamental_cycles
-
-    return [cycle for cycle, _chord in fundamental_cycles(n, _checked(n, edges))]
+    return [cycle for cycle, _chord in graph.fundamental_cycles(n, _checked(n, edges))]
 
 
 # ------------------------------------------------------------------ tree counts

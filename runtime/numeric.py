@@ -49,6 +49,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import EvaluationError
+from .graph import terminal_components
 from .kernel import _pool
 
 LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
@@ -96,55 +97,15 @@ def _check_graph(n, edges):
 
 
 def _terminal_states(n, out_adj):
-    """States of the unique terminal strong component (Tarjan, iterative)."""
-    index = [-1] * n
-    low = [0] * n
-    on = [False] * n
-    comp = [-1] * n
-    stack, comps, counter = [], [], 0
-    for s in range(n):
-        if index[s] >= 0:
-            continue
-        work = [(s, iter(out_adj[s]))]
-        index[s] = low[s] = counter
-        counter += 1
-        stack.append(s)
-        on[s] = True
-        while work:
-            v, it = work[-1]
-            for w in it:
-                if index[w] < 0:
-                    index[w] = low[w] = counter
-                    counter += 1
-                    stack.append(w)
-                    on[w] = True
-                    work.append((w, iter(out_adj[w])))
-                    break
-                if on[w]:
-                    low[v] = min(low[v], index[w])
-            else:
-                work.pop()
-                if work:
-                    u = work[-1][0]
-                    low[u] = min(low[u], low[v])
-                if low[v] == index[v]:
-                    members = []
-                    while True:
-                        w = stack.pop()
-                        on[w] = False
-                        comp[w] = len(comps)
-                        members.append(w)
-                        if w == v:
-                            break
-                    comps.append(members)
-    terminal = [c for c, members in enumerate(comps)
-                if all(comp[w] == c for v in members for w in out_adj[v])]
+    """States of the unique terminal strong component; refuses several."""
+    edges = [(v, w) for v in range(n) for w in out_adj[v]]
+    terminal = terminal_components(n, edges)
     if len(terminal) != 1:
-        shown = "; ".join("{" + ", ".join(map(str, sorted(comps[c])[:6]))
-                          + (", ..." if len(comps[c]) > 6 else "") + "}" for c in terminal[:4])
+        shown = "; ".join("{" + ", ".join(map(str, comp[:6])) + (", ..." if len(comp) > 6 else "") + "}"
+                          for comp in terminal[:4])
         raise EvaluationError(f"the scheme has {len(terminal)} terminal components ({shown}), "
                               "so its steady state is not unique")
-    return set(comps[terminal[0]])
+    return set(terminal[0])
 
 
 def _adjacency(n, src, dst):

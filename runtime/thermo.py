@@ -31,68 +31,13 @@ References
 from __future__ import annotations
 
 import math
-from collections import deque
 
 import numpy as np
 
 from .errors import EvaluationError
+from .graph import fundamental_cycles
 
 __all__ = ["thermodynamics", "fundamental_cycles"]
-
-
-def fundamental_cycles(n: int, edges) -> list[tuple[list[int], tuple[int, int]]]:
-    """Fundamental cycles of the undirected skeleton, with their chords.
-
-    A breadth-first spanning tree is grown from the smallest state of each
-    connected part (neighbours in increasing order). Every non-tree pair
-    {u, v} (u < v, in increasing order) closes one cycle, listed as
-    ``[a, ..., u, v, ..., b]`` where a is the lowest common ancestor of u and
-    v; the cycle is traversed in list order and closes with b→a. Its chord is
-    (u, v). There are m_skeleton − n + (number of connected parts) cycles,
-    a basis of the cycle space.
-
-    >>> fundamental_cycles(3, [(0, 1), (1, 2), (2, 0)])
-    [([0, 1, 2], (1, 2))]
-    """
-    nbrs: list[set] = [set() for _ in range(n)]
-    for i, j in edges:
-        if i != j:
-            nbrs[i].add(j)
-            nbrs[j].add(i)
-    order = [sorted(s) for s in nbrs]
-    parent = [-1] * n
-    depth = [-1] * n
-    for root in range(n):
-        if depth[root] != -1:
-            continue
-        depth[root] = 0
-        queue = deque([root])
-        while queue:
-            a = queue.popleft()
-            for b in order[a]:
-                if depth[b] == -1:
-                    depth[b] = depth[a] + 1
-                    parent[b] = a
-                    queue.append(b)
-    cycles = []
-    for u in range(n):
-        for v in order[u]:
-            if v <= u or parent[v] == u or parent[u] == v:
-                continue
-            up_u, up_v = [u], [v]
-            a, b = u, v
-            while depth[a] > depth[b]:
-                a = parent[a]
-                up_u.append(a)
-            while depth[b] > depth[a]:
-                b = parent[b]
-                up_v.append(b)
-            while a != b:
-                a, b = parent[a], parent[b]
-                up_u.append(a)
-                up_v.append(b)
-            cycles.append((up_u[::-1] + up_v[:-1], (u, v)))
-    return cycles
 
 
 def _log(x: float) -> float:
