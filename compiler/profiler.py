@@ -9,6 +9,9 @@ from .frontend import build
 from .model import Scheme
 from .pipeline import MAX_COUNT_STATES, _simplify, plan
 
+# Derivative op counts are profiled for value bodies up to this size.
+DERIVATIVE_PROFILE_LIMIT = 2_000
+
 
 def profile(scheme: Scheme, *, method: str = "auto") -> dict:
     """A JSON-ready profile of the scheme (see DESIGN.md for the fields)."""
@@ -73,6 +76,17 @@ def profile(scheme: Scheme, *, method: str = "auto") -> dict:
         out["operations_before_simplify"] = before
         out["passes"] = report
         out["fill"] = info.fill
+        if key == "p" and out["operations"]["total"] <= DERIVATIVE_PROFILE_LIMIT:
+            from .simplify import differentiate
+            t0 = time.perf_counter()
+            jac = differentiate(simple, group="p")
+            deriv_report: list = []
+            jac = _simplify(jac, deriv_report)
+            timings["derivatives"] = time.perf_counter() - t0
+            jac_ops = ir.count_ops(jac.graph, jac.group("jac"))
+            out["derivative_operations"] = jac_ops
+            out["derivative_operations_per_state_row"] = round(jac_ops["total"] / len(names), 1)
+            out["derivative_passes"] = deriv_report
     else:
         out["operations"] = {"total": chosen.reasons["elimination_flops"], "looped": True}
         out["fill"] = chosen.reasons["fill"]

@@ -30,6 +30,8 @@ def test_profile_json_fields(capsys):
     assert prof["detailed_balance"] == "conditional"
     assert prof["method"] in ("elimination", "trees")
     assert prof["operations"]["total"] > 0
+    assert prof["derivative_operations"]["total"] > prof["operations"]["total"]
+    assert [p["pass"] for p in prof["passes"]][-1] == "compact"
 
 
 def test_profile_non_reversible(capsys):
