@@ -130,11 +130,13 @@ class CompiledModel:
         return arr
 
     def _check(self, arr: np.ndarray) -> None:
+        n_par = len(self.info.parameters)
+        if arr.size == 0 or self._quick_ok(arr, n_par):
+            return
         finite = np.isfinite(arr)
         if not finite.all():
             r, c = np.argwhere(~finite)[0]
             raise EvaluationError(f"row {r}: symbol {self.symbols[c]!r} is not finite ({arr[r, c]})")
-        n_par = len(self.info.parameters)
         bad = arr[:, :n_par] <= 0
         if bad.any():
             r, c = np.argwhere(bad)[0]
@@ -144,6 +146,18 @@ class CompiledModel:
             r, c = np.argwhere(neg)[0]
             raise EvaluationError(f"row {r}: input {self.symbols[n_par + c]!r} must be non-negative, "
                                   f"got {arr[r, n_par + c]}")
+
+    @staticmethod
+    def _quick_ok(arr: np.ndarray, n_par: int) -> bool:
+        """Read-only min/max reductions (NaN fails every comparison); the
+        detailed search for the offending entry runs only when this fails."""
+        par, inp = arr[:, :n_par], arr[:, n_par:]
+        ok = True
+        if par.size:
+            ok = bool(par.min() > 0) and bool(par.max() < np.inf)
+        if ok and inp.size:
+            ok = bool(inp.min() >= 0) and bool(inp.max() < np.inf)
+        return ok
 
     # ------------------------------------------------------------ evaluation
     def labels(self, X) -> np.ndarray:
@@ -163,27 +177,41 @@ class CompiledModel:
                                   f"({comps}), so its steady state is not unique; use basis(X)")
 
     def steady_state(self, X, *, out=None, threads=None) -> np.ndarray:
-        """Steady-state probabilities (N, n_states) in :attr:`states` order."""
+        """Steady-state probabilities (N, n_states) in :attr:`states` order.
+
+        ``out``, a C-contiguous float64 (N, n_states) array, is written in
+        place (no allocation: reuse it in fitting loops)."""
         self._require_single()
         arr = self.as_array(X)
-        n = len(self.states)
+        shape = (arr.shape[0], len(self.states))
+        if out is not None and (out.shape != shape or out.dtype != np.float64):
+            raise EvaluationError(f"out must be a float64 array of shape {shape}, got {out.shape} {out.dtype}")
         if self.kernel is None:
             P = self._numeric(arr)
         else:
             a, b = self.info.groups["p"]
-            P = self._outputs(arr, threads)[:, a:b]
-            bad = ~np.isfinite(P).all(axis=1) | (np.abs(P.sum(axis=1) - 1.0) > 1e-9)
+            direct = (out is not None and (a, b) == (0, self.kernel.n_outputs)
+                      and out.flags.c_contiguous)
+            P = self._outputs_into(arr, out if direct else None, threads)[:, a:b]
+            # Row sums by one matrix-vector product (much faster than
+            # sum(axis=1) on narrow rows); a non-finite entry spoils its sum.
+            bad = ~(np.abs(P @ np.ones(P.shape[1]) - 1.0) <= 1e-9)
             if self.info.tree_edges:
                 bad |= self._tree_underflow(arr)
             if bad.any():
-                P = np.array(P)
+                if not direct:
+                    P = np.array(P)
                 P[bad] = self._numeric(arr[bad])
         if out is not None:
-            if out.shape != (arr.shape[0], n):
-                raise EvaluationError(f"out must have shape {(arr.shape[0], n)}, got {out.shape}")
-            out[...] = P
+            if P is not out:
+                out[...] = P
             return out
-        return np.ascontiguousarray(P)
+        return P if P.flags.c_contiguous else np.ascontiguousarray(P)
+
+    def _outputs_into(self, arr, out, threads):
+        if self.kernel is None:
+            raise EvaluationError("this model was compiled for the looped numeric path only")
+        return self.kernel(arr, out, threads=threads)
 
     def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
         """Rows where a tree product of labels scaled by their maximum could

@@ -46,6 +46,7 @@ LEVELS = (0.1, 0.5, 0.9)
 FD_STEP = 6e-6
 # A response whose span over the range is below this fraction of its size is flat.
 FLAT_TOLERANCE = 1e-12
+SATURATION_FRACTION = 0.05  # end log-slope / steepest log-slope above which a curve is cut
 _GOLDEN = (math.sqrt(5.0) - 1.0) / 2.0
 
 NOTE = "model predictions of the scheme, not measurements"
@@ -282,6 +283,14 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
             val[ok] = slope
         out[key] = val
         out[key + "_at"] = at
+    # ------------------------------------------------ saturation at the range ends
+    # If the normalized response still climbs at an end of the range, the
+    # range cuts the curve: ec levels and Hill coefficients then describe the
+    # range as much as the scheme. Flag it (end log-slopes above 5% of the
+    # steepest one).
+    end = np.maximum(np.abs(Yn[:, 1] - Yn[:, 0]) / (u_grid[1] - u_grid[0]),
+                     np.abs(Yn[:, -1] - Yn[:, -2]) / (u_grid[-1] - u_grid[-2]))
+    out["saturated"] = (end <= SATURATION_FRACTION * np.abs(out["max_log_slope"])) & ~flat
     return out
 
 
@@ -343,6 +352,7 @@ def hill_fit(x: np.ndarray, y: np.ndarray, *, n0: float, K0: float, max_iter: in
 def _num(v):
     v = float(v)
     return v if math.isfinite(v) else None
+
 
 
 def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
@@ -412,8 +422,12 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
                 "max_log_slope", "max_log_slope_at"):
         result[key] = _num(s[key][0])
     result["hill_fit"] = fit
+    result["saturated"] = bool(s["saturated"][0])
     note = ("model predictions of the scheme, not measurements; the response is normalized "
             "to [0, 1] over the range (min to max)")
+    if not result["saturated"]:
+        note += ("; the response is still changing at an end of the range, so ec levels and "
+                 "Hill coefficients are relative to this range: widen it")
     if not monotone:
         note += "; it is not monotone over the range, so ec10/ec50/ec90 are first crossings"
     result["note"] = note

@@ -33,7 +33,7 @@ __all__ = ["sample", "sample_ranges", "write_table", "DEFAULT_DECADES", "RESPONS
 
 DEFAULT_DECADES = 1.0
 RESPONSE_COLUMNS = ("ec10", "ec50", "ec90", "hill_effective", "max_log_slope",
-                    "max_log_slope_at", "max_slope", "max_slope_at", "direction")
+                    "max_log_slope_at", "max_slope", "max_slope_at", "direction", "saturated")
 # rows per task: big enough to amortize the pool's per-task cost, small
 # enough for the response grid (points × rows evaluations) to fit in memory
 _STEADY_CHUNK = 20_000

@@ -626,3 +626,16 @@ def test_fit_flags_a_parameter_the_data_cannot_see():
     assert set(r["parameters"]) == {"kon", "kact", "spare"}
     assert r["uncertainties"] == {"kon": None, "kact": None, "spare": None}
     assert "not all identifiable" in r["note"]
+
+
+def test_saturation_flag_reports_a_cut_curve():
+    # Single-site binding y = c/(K+c) (common practice): its log-slope
+    # cK/(K+c)^2 is 1/4 at c = K and about 0.083 at c = K/10, so a range of
+    # one decade either side of K cuts the curve; eight decades either side
+    # leave end slopes near 1e-8 of the steepest one.
+    m = compile_scheme(single_site())
+    K = 2.0  # K_off / K_on for the default single_site()
+    narrow = response_curve(m, observable="bound", input="c", lo=K / 10, hi=K * 10)
+    wide = response_curve(m, observable="bound", input="c", lo=K * 1e-8, hi=K * 1e8)
+    assert narrow["saturated"] is False and "widen it" in narrow["note"]
+    assert wide["saturated"] is True and "widen" not in wide["note"]

@@ -171,7 +171,8 @@ def test_sample_csv_workers_and_json(files, capsys):
     assert np.array_equal(data, ref["data"])
     r = run_json(capsys, ["sample", str(sw), "--n", "40", "--observable", "on", "--input", "s",
                           "--range", "1e-4:1e4", "--json"])
-    assert r["columns"][-9:][:4] == ["ec10", "ec50", "ec90", "hill_effective"]
+    assert r["columns"][-10:][:4] == ["ec10", "ec50", "ec90", "hill_effective"]
+    assert r["columns"][-1] == "saturated"
     assert r["summary"]["hill_effective"]["count"] == 40
     rows = np.array(r["rows"], dtype=float)
     # every sample is single-site binding s/(K + s), K = koff/kon: exact levels of the
@@ -235,3 +236,18 @@ def test_fit_refuses_unknown_columns(files, capsys):
     path = tmp / "bad.csv"
     path.write_text("s,on,mystery\n1,0.3,2\n")
     assert "column 'mystery'" in refused(capsys, ["fit", str(sw), str(path)])
+
+
+def test_plots_are_written_as_png(files, capsys):
+    # matplotlib is in the test extra; the files must be real PNGs (magic bytes
+    # from the PNG specification, ISO/IEC 15948).
+    sw, _, tmp = files
+    resp, samp = tmp / "response.png", tmp / "samples.png"
+    assert main(["response", str(sw), "--observable", "on", "--input", "s",
+                 "--range", "1e-3:1e3", "--plot", str(resp)]) == 0
+    assert main(["sample", str(sw), "--n", "40", "--observable", "on", "--input", "s",
+                 "--range", "1e-3:1e3", "--out", str(tmp / "s.csv"), "--plot", str(samp)]) == 0
+    capsys.readouterr()
+    for path in (resp, samp):
+        data = path.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 5000
