@@ -40,6 +40,8 @@ MAX_COUNT_STATES = 400
 MAX_BALANCE_CYCLES = 400
 # formula(expand=True) lists trees only up to this many per state.
 MAX_FORMULA_TREES = 20_000
+# The nested closed form is built only up to this many elimination flops.
+MAX_FORMULA_OPS = 50_000
 
 
 @dataclass
@@ -58,7 +60,6 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     """Choose (or check) the method, with the numbers that led to the choice."""
     if method not in METHODS:
         raise ModelError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
-    from treeflux.runtime.numeric import EliminationPlan
 
     st = _structure()
     scheme.validate()
@@ -71,18 +72,7 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
         counts = st.tree_counts(n, edges)
         tree_factors = sum(c * (len(comp) - 1) for comp in comps for c in (counts[i] for i in comp))
         reasons["tree_factors"] = tree_factors
-    flops = 0
-    fill = 0
-    whole = None
-    for comp in comps:
-        local = {s: a for a, s in enumerate(comp)}
-        sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
-        if len(comp) > 1:
-            p = EliminationPlan(len(comp), sub)
-            flops += p.flops
-            fill += p.fill
-            if len(comp) == n:
-                whole = p
+    flops, fill, whole = _elimination_cost(n, edges, comps)
     reasons["elimination_flops"] = flops
     reasons["fill"] = fill
     if not st.is_reversible(n, edges):
@@ -130,6 +120,25 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
         raise ModelError(f"{scheme.origin}: the numeric path needs one terminal component; "
                          f"this scheme has {len(comps)}")
     return Plan(method, reasons, whole)
+
+
+def _elimination_cost(n: int, edges, comps):
+    """(flops, fill, plan of the whole scheme or None) of elimination with the
+    fill-reducing order, summed over the terminal components."""
+    from treeflux.runtime.numeric import EliminationPlan
+
+    flops = fill = 0
+    whole = None
+    for comp in comps:
+        local = {s: a for a, s in enumerate(comp)}
+        sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
+        if len(comp) > 1:
+            p = EliminationPlan(len(comp), sub)
+            flops += p.flops
+            fill += p.fill
+            if len(comp) == n:
+                whole = p
+    return flops, fill, whole
 
 
 def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
@@ -325,6 +334,10 @@ def formula(scheme: Scheme, state: str, *, method: str = "elimination", expand: 
         fn, info = build(scheme, method="trees", scale=False)
         node = fn.group("rho")[i]
         return ir.to_sympy(fn.graph, [node], scheme.symbols)[0]
+    flops = _elimination_cost(n, edges, st.terminal_components(n, edges))[0]
+    if flops > MAX_FORMULA_OPS:
+        raise TooLargeError(f"{scheme.origin}: the nested closed form needs about {flops:,} operations "
+                            f"(limit {MAX_FORMULA_OPS:,}); evaluate the scheme numerically instead")
     fn, info = build(scheme, method="elimination")
     rho = fn.group("rho")
     comp_index = next((c for c, comp in enumerate(info.components) if i in comp), None)

@@ -171,3 +171,19 @@ def test_lattice_numeric_path_against_scipy():
     ref = spsolve(L.tocsc(), b)
     ours = np.array([P[idx[f"{i // side}_{i % side}"]] for i in range(n)])
     np.testing.assert_allclose(ours, ref, rtol=1e-9)
+
+
+def test_formula_of_a_large_scheme_is_refused_with_the_estimate():
+    side = 30
+    s = Scheme()
+    for r in range(side):
+        for c in range(side):
+            if c + 1 < side:
+                s.add_edge(f"{r}_{c}", f"{r}_{c + 1}", "a")
+                s.add_edge(f"{r}_{c + 1}", f"{r}_{c}", "b")
+            if r + 1 < side:
+                s.add_edge(f"{r}_{c}", f"{r + 1}_{c}", "a")
+                s.add_edge(f"{r + 1}_{c}", f"{r}_{c}", "b")
+    with pytest.raises(TooLargeError, match=r"nested closed form needs about [\d,]+ operations"):
+        formula(s, "0_0")
+    assert plan(s).method == "numeric"  # about 311,000 flops: beyond straight-line code
