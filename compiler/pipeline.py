@@ -80,13 +80,15 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     elif len(edges) // 2 - n + 1 <= MAX_BALANCE_CYCLES:
         balance = st.detailed_balance(scheme)["verdict"]
     else:
-        balance = None  # not checked: too many cycles for the symbolic test
+        # Too many cycles for SymPy: exact test at random rational points.
+        balance = st.balanced_at_random_points(scheme)
+        reasons["detailed_balance_test"] = "exact at random rational points (Schwartz-Zippel)" 
     reasons["detailed_balance"] = balance
     reasons["limits"] = {"straight_line_ops": STRAIGHT_LINE_LIMIT, "tree_factors": MAX_TREE_FACTORS,
                          "symbolic_ops": MAX_SYMBOLIC_OPS}
 
     if method == "auto":
-        if balance is True and len(comps) == 1:
+        if balance is True and len(comps) == 1 and 3 * n <= STRAIGHT_LINE_LIMIT:
             chosen = "equilibrium"
         elif tree_factors is not None and tree_factors <= min(flops, 400):
             chosen = "trees"

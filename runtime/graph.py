@@ -150,3 +150,38 @@ def fundamental_cycles(n: int, edges) -> list[tuple[list[int], tuple[int, int]]]
                 up_v.append(b)
             cycles.append((up_u[::-1] + up_v[:-1], (u, v)))
     return cycles
+
+
+class BreadthFirstTree:
+    """Parents of a breadth-first spanning forest of the undirected skeleton."""
+
+    def __init__(self, parent: list[int], order: list[int]):
+        self.parent = parent  # -1 at each root
+        self.order = order    # every state, each after its parent
+
+
+def breadth_first_parents(n: int, edges) -> BreadthFirstTree:
+    """Breadth-first forest from the smallest state of each connected part,
+    neighbours in increasing order."""
+    nbrs: list[set] = [set() for _ in range(n)]
+    for i, j in edges:
+        if i != j:
+            nbrs[i].add(j)
+            nbrs[j].add(i)
+    parent = [-1] * n
+    seen = [False] * n
+    order = []
+    for root in range(n):
+        if seen[root]:
+            continue
+        seen[root] = True
+        queue = deque([root])
+        while queue:
+            a = queue.popleft()
+            order.append(a)
+            for b in sorted(nbrs[a]):
+                if not seen[b]:
+                    seen[b] = True
+                    parent[b] = a
+                    queue.append(b)
+    return BreadthFirstTree(parent, order)

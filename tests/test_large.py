@@ -187,3 +187,42 @@ def test_formula_of_a_large_scheme_is_refused_with_the_estimate():
     with pytest.raises(TooLargeError, match=r"nested closed form needs about [\d,]+ operations"):
         formula(s, "0_0")
     assert plan(s).method == "numeric"  # about 311,000 flops: beyond straight-line code
+
+
+def drifting_lattice(side, right="k*b", left="k/b", up="k", down="k", odd_right=None):
+    s = Scheme()
+    for r in range(side):
+        for c in range(side):
+            if c + 1 < side:
+                s.add_edge(f"{r}_{c}", f"{r}_{c + 1}", odd_right if odd_right and r % 2 else right)
+                s.add_edge(f"{r}_{c + 1}", f"{r}_{c}", left)
+            if r + 1 < side:
+                s.add_edge(f"{r}_{c}", f"{r + 1}_{c}", down)
+                s.add_edge(f"{r + 1}_{c}", f"{r}_{c}", up)
+    return s
+
+
+def test_large_equilibrium_scheme_found_by_random_point_test():
+    # 841 basis cycles: beyond the symbolic test, so detailed balance is
+    # decided exactly at random rational points (Schwartz–Zippel). With right
+    # rate k·b and left rate k/b the stationary law is p(r, c) ∝ b^(2c)
+    # (detailed balance along rows, uniform along columns; common practice).
+    side = 30
+    s = drifting_lattice(side)
+    p = plan(s)
+    assert p.reasons["detailed_balance"] is True and p.method == "equilibrium"
+    m = compile_scheme(s)
+    b = 1.3
+    P = m.steady_state({"k": 2.0, "b": b})[0]
+    weights = b ** (2 * np.arange(side))
+    idx = {name: i for i, name in enumerate(m.states)}
+    for r in (0, 17):
+        for c in (0, 5, 29):
+            expect = weights[c] / (side * weights.sum())
+            assert abs(P[idx[f"{r}_{c}"]] - expect) <= 1e-13 * expect
+    # A uniform drift is still balanced on a lattice; a drift that differs
+    # between rows drives a current around every square.
+    driven = drifting_lattice(side, odd_right="k*e")
+    from treeflux.compiler.structure import balanced_at_random_points
+    assert balanced_at_random_points(driven) == "conditional"
+    assert plan(driven).method == "numeric"
