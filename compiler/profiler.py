@@ -62,7 +62,8 @@ def profile(scheme: Scheme, *, method: str = "auto") -> dict:
         out["trees_note"] = f"exact tree counts are computed up to {MAX_COUNT_STATES} states"
     if chosen.method != "numeric":
         t0 = time.perf_counter()
-        fn, info = build(scheme, method=chosen.method)
+        fn, info = build(scheme, method=chosen.method,
+                         order=chosen.numeric.order if chosen.numeric is not None else None)
         timings["frontend"] = time.perf_counter() - t0
         key = "p" if "p" in fn.groups else "basis"
         kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)

@@ -41,8 +41,11 @@ def lower_labels(scheme: Scheme, graph: Graph) -> list[int]:
     return [lower_label(graph, e.label, column) for e in scheme.edges]
 
 
-def build(scheme: Scheme, *, method: str, scale: bool = True) -> tuple[Function, BuildInfo]:
-    """Lower ``scheme`` to a Function with the chosen front end (no size checks here)."""
+def build(scheme: Scheme, *, method: str, scale: bool = True, order=None) -> tuple[Function, BuildInfo]:
+    """Lower ``scheme`` to a Function with the chosen front end (no size checks here).
+
+    ``order`` is an elimination order of all states, for a scheme that is one
+    strongly connected component (the planner has already computed it)."""
     if method not in METHODS:
         raise ValueError(f"unknown front end {method!r}")
     scheme.validate()
@@ -63,7 +66,8 @@ def build(scheme: Scheme, *, method: str, scale: bool = True) -> tuple[Function,
         elif method == "trees":
             x = trees.tree_sums(g, len(comp), sub, sub_labels, scale=scale)
         elif method == "elimination":
-            red = elimination.reduce(g, len(comp), sub, sub_labels)
+            whole = order is not None and len(comp) == n
+            red = elimination.reduce(g, len(comp), sub, sub_labels, order=list(order) if whole else None)
             info.fill += red.fill
             info.orders.append([comp[a] for a in red.order])
             info.pivots.append(red.pivots)
