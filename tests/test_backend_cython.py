@@ -3,7 +3,8 @@
 References as in tests/test_backend_c.py (whose hand-built functions this
 file reuses): the IR's numpy and 50-digit mpmath evaluators, the master
 equation, the Briggs–Haldane closed form. A Cython build takes seconds, so
-the functions under test are stacked side by side into one module.
+the functions under test are stacked side by side into one module; one of
+them is a random DAG long enough that the body is split into several parts.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import json
 import pickle
 import subprocess
 import sys
+from fractions import Fraction
 
 import numpy as np
 import pytest
@@ -20,6 +22,8 @@ import pytest
 from .test_backend_c import (THREE, assert_close_mp, balance_residual, briggs_haldane, edges_of,
                             log_uniform, mpmath_reference, numpy_reference, op_zoo, random_dag,
                             stack, steady_function)
+from treeflux.compiler import ir
+from treeflux.compiler.backends import c as cback
 from treeflux.compiler.backends import cython as cyback
 from treeflux.runtime.errors import EvaluationError
 
@@ -29,7 +33,8 @@ def parts():
     """(Function, input slice, output slice) of each stacked piece."""
     bh, es = briggs_haldane()
     fns = {"zoo": op_zoo(), "three": steady_function("three"), "q2": steady_function("q2"),
-           "dag": random_dag(4), "bh": bh}
+           "dag": random_dag(4), "bh": bh,
+           "long": random_dag(11, n_inputs=5, n_nodes=160)}
     table, i0, o0 = {}, 0, 0
     for key, fn in fns.items():
         table[key] = (fn, slice(i0, i0 + fn.n_inputs), slice(o0, o0 + len(fn.outputs)))
@@ -51,6 +56,7 @@ def inputs(parts, n, seed):
     rng = np.random.default_rng(seed)
     X = log_uniform(rng, (n, whole.n_inputs))
     X[:, table["zoo"][1]] = rng.uniform(0.5, 2.0, (n, 3))
+    X[:, table["long"][1]] = rng.uniform(0.1, 10.0, (n, 5))  # keeps exp() finite
     return X
 
 
@@ -148,3 +154,65 @@ def test_without_openmp_falls_back_and_says_so(monkeypatch):
     np.testing.assert_allclose(Y, numpy_reference(fn, X), rtol=1e-14, atol=0)
     assert np.array_equal(Y, kern(X, threads=1))
     assert balance_residual(edges_of("three"), X, Y) < 1e-12
+
+
+def test_long_body_is_split_into_parts_and_agrees(parts, kernel):
+    table, whole, _ = parts
+    fn, si, so = table["long"]
+    assert cback.computed_rows(whole) > 2 * cback.CHUNK_ROWS
+    text = cyback.emit(whole, name="stacked")["stacked.pyx"]
+    n_parts = -(-cback.computed_rows(whole) // cback.CHUNK_ROWS)
+    assert text.count("cdef void _part") == n_parts and f"_part{n_parts - 1}(w)" in text
+    X = inputs(parts, 21, 8)
+    assert np.all(np.isfinite(kernel(X)))
+    np.testing.assert_allclose(kernel(X)[:, so], numpy_reference(fn, X[:, si]), rtol=1e-14, atol=0)
+    assert_close_mp(kernel(X[:4])[:, so], mpmath_reference(fn, X[:4, si]))
+
+
+def test_lane_loops_cover_every_row_in_a_reused_workspace(parts):
+    _, whole, _ = parts
+    text = cyback.emit(whole, name="stacked")["stacked.pyx"]
+    _, n_slots = cback.allocate_slots(whole)
+    assert text.count(f"for b in range({cback.LANES}): w[") == cback.computed_rows(whole)
+    assert n_slots < cback.computed_rows(whole) / 2  # liveness lets slots be reused
+    words = (whole.n_inputs + n_slots) * cback.LANES
+    assert f"malloc({words} * sizeof(double) + 64)" in text
+    assert "cdef double t" not in text  # no scalar row temporaries left
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_partial_blocks_and_sub_ranges(parts, kernel, threads):
+    _, whole, _ = parts
+    X = inputs(parts, 61, 9)
+    full = kernel(X)
+    for start, stop in [(0, 1), (0, 7), (3, 11), (5, 21), (8, 16), (9, 61), (17, 17)]:
+        out = np.full_like(full, -1.0)
+        assert kernel.module.run(X, out, start, stop, threads) == 0
+        assert np.array_equal(out[start:stop], full[start:stop])
+        assert np.all(out[:start] == -1.0) and np.all(out[stop:] == -1.0)  # untouched
+
+
+@pytest.mark.parametrize("bad", [0, 7, 8, 13, 39])
+def test_serial_refusal_writes_rows_before_only(parts, kernel, bad):
+    _, whole, _ = parts
+    X = inputs(parts, 40, 10)
+    ref = kernel(X)
+    X[bad, 3] = np.inf
+    out = np.full_like(ref, -1.0)
+    assert kernel.module.run(X, out, 0, 40, 1) == bad + 1
+    assert np.array_equal(out[:bad], ref[:bad])
+    assert np.all(out[bad:] == -1.0)
+    out = np.full_like(ref, -1.0)
+    assert kernel.module.run(X, out, 0, 40, 3) == bad + 1
+    assert np.array_equal(out[:bad], ref[:bad])
+
+
+def test_constant_function_without_inputs():
+    g = ir.Graph()
+    half = g.const(Fraction(1, 2))
+    fn = ir.Function(g, 0, [])
+    fn.add_group("out", [half, g.add(half, g.const(Fraction(1, 3)))])
+    kern = cyback.build(fn, name="constants")
+    # the constant 1/3 becomes the nearest double, then one IEEE addition
+    np.testing.assert_array_equal(kern(np.empty((11, 0))), np.tile([0.5, 0.5 + 1 / 3], (11, 1)))
+    assert kern.module.run(np.empty((0, 0)), np.empty((0, 2)), 0, 0, 2) == 0

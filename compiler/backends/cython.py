@@ -1,11 +1,25 @@
 """Cython back end: a ``.pyx`` module built at run time like ``cython.inline``.
 
-The emitted module evaluates one parameter set per call of a ``noexcept
-nogil`` row function: a straight-line body over scalar ``double`` locals
-(``t<row>``), operands spelled by position (``x[j]`` is input ``j``).
-``run(x, out, start, stop, threads)`` loops over rows with ``prange(...,
-schedule="static")`` inside ``with nogil`` when more than one thread is asked
-for, else with a plain loop that stops at the first refused row.
+The emitted module follows the C back end's layout (:mod:`.c`): parameter
+sets are taken :data:`LANES` at a time and laid out side by side in one
+per-thread workspace ``w`` (a flat ``double`` array, 64-byte aligned): input
+``j`` of lane ``b`` at ``w[j*8 + b]``, then the temporaries, slot ``s`` at
+``w[(n_inputs + s)*8 + b]``, slots reused after a value's last use
+(:func:`.c.allocate_slots`). Every IR row becomes one lane loop ``for b in
+range(8)`` over a typed ``int b`` on a raw pointer, which Cython writes as a
+plain C ``for`` with a fixed trip count and gcc ``-O3 -march=native``
+vectorises across the lanes. A single base pointer means the compiler sees
+every access as a constant offset from it, so no aliasing question arises.
+The body is split into functions of :data:`.c.CHUNK_ROWS` rows
+(``-fno-inline-functions-called-once`` keeps them apart: gcc's alias walk is
+quadratic within one function). The last, partial block is padded with a
+copy of its last row and only its real rows are written back.
+
+``run(x, out, start, stop, threads)`` evaluates rows ``start..stop-1``; with
+``threads > 1`` the blocks are shared out in contiguous runs by ``prange(...,
+schedule="static")`` inside ``with nogil``, each thread with its own
+workspace; it returns 0, or ``r+1`` for the first row ``r`` holding a
+non-finite input (rows before it are written).
 
 Building: the ``.pyx`` is written into a cache entry directory named by the
 content hash (:func:`treeflux.runtime.cache.fetch`), cythonized and compiled
@@ -38,11 +52,14 @@ from treeflux.runtime import cache
 from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
 
 from ..ir import Function
-from .c import c_identifier, expression, literal
+from .c import CHUNK_ROWS, LANES, allocate_slots, c_identifier, expression, literal
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
 #: reference evaluator's and the C back end's (which compiles as ISO C99).
-COMPILE_ARGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=off")
+#: ``-fno-inline-functions-called-once`` keeps the body's parts separate
+#: functions (each is called once, from ``_block``).
+COMPILE_ARGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=off",
+                "-fno-inline-functions-called-once")
 
 _PYX = """\
 # cython: language_level=3, boundscheck=False, wraparound=False
@@ -52,11 +69,17 @@ _PYX = """\
 # run(x, out, start, stop, threads=1) -> int
 #   x: C-contiguous float64 (N, N_INPUTS), out: C-contiguous float64
 #   (N, N_OUTPUTS); evaluates rows start..stop-1. Returns 0, or r+1 for the
-#   first row r holding a non-finite input (NaN or +-inf). Positivity of the
-#   rates is checked by the caller. With threads > 1 the rows are shared out
-#   by OpenMP (prange, static schedule) when the module was built with it.
+#   first row r holding a non-finite input (NaN or +-inf); rows before r are
+#   written. Positivity of the rates is checked by the caller. With
+#   threads > 1 the blocks of {lanes} rows are shared out by OpenMP (prange,
+#   static schedule) when the module was built with it.
+#
+# Workspace of one thread: w[(j)*{lanes} + b] is input j of lane b, then
+# w[({n_in} + s)*{lanes} + b] is slot s ({n_slots} slots).
 from cython.parallel cimport prange
-from libc.math cimport exp, log, sqrt, pow, isfinite
+from libc.math cimport exp, log, sqrt, pow
+from libc.stdint cimport uintptr_t
+from libc.stdlib cimport malloc, free
 
 N_INPUTS = {n_in}
 N_OUTPUTS = {n_out}
@@ -75,19 +98,49 @@ cdef inline double _powi(double a, int m) noexcept nogil:
         m >>= 1
     return r
 
+{parts}
+cdef void _block(double *w) noexcept nogil:
+{calls}
 
-cdef inline int _finite_row(const double *x) noexcept nogil:
-    cdef int j
-    for j in range({n_in}):
-        if not isfinite(x[j]):
-            return 0
-    return 1
-
-
-cdef int _row(const double *x, double *y) noexcept nogil:
-{decls}    if not _finite_row(x):
-        return 1
-{body}    return 0
+cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
+                      Py_ssize_t stop) noexcept nogil:
+    # Rows start..stop-1, {lanes} at a time: 0, r+1 (first non-finite row r)
+    # or -1 (no memory for the workspace).
+    cdef char *raw = <char *> malloc({n_words} * sizeof(double) + 64)
+    if raw == NULL:
+        return -1
+    cdef double *w = <double *> ((<uintptr_t> raw + 63) & ~(<uintptr_t> 63))
+    cdef double nan_lane[{lanes}]
+    cdef const double *xr
+    cdef double *yr
+    cdef Py_ssize_t r0 = start, status = 0
+    cdef int b, j, n, bad
+    while r0 < stop:
+        n = <int> (stop - r0) if stop - r0 < {lanes} else {lanes}
+        for b in range({lanes}):
+            xr = x + (r0 + (b if b < n else n - 1)) * {n_in}
+            for j in range({n_in}):
+                w[j * {lanes} + b] = xr[j]
+        # x * 0.0 is NaN exactly when x is NaN or +-inf.
+        for b in range({lanes}):
+            nan_lane[b] = 0.0
+        for j in range({n_in}):
+            for b in range({lanes}):
+                nan_lane[b] += w[j * {lanes} + b] * 0.0
+        bad = n
+        for b in range(n):
+            if nan_lane[b] != nan_lane[b]:
+                bad = b
+                break
+        _block(w)
+        for b in range(bad):
+            yr = y + (r0 + b) * {n_out}
+{stores}        if bad < n:
+            status = r0 + bad + 1
+            break
+        r0 += {lanes}
+    free(raw)
+    return status
 
 
 def run(const double[:, ::1] x, double[:, ::1] out, Py_ssize_t start, Py_ssize_t stop,
@@ -96,52 +149,72 @@ def run(const double[:, ::1] x, double[:, ::1] out, Py_ssize_t start, Py_ssize_t
         raise ValueError("shape mismatch: x must be (N, {n_in}) and out (N, {n_out})")
     if not 0 <= start <= stop <= x.shape[0]:
         raise ValueError("row range out of bounds")
-    cdef Py_ssize_t r, bad = 0
     cdef const double *xp = &x[0, 0] if x.shape[0] > 0 and {n_in} > 0 else NULL
     cdef double *yp = &out[0, 0] if out.shape[0] > 0 else NULL
+    cdef Py_ssize_t n_blocks = (stop - start + {lanes_less}) // {lanes}
+    cdef Py_ssize_t t, lo, hi, status = 0
+    cdef Py_ssize_t *found
+    if threads > n_blocks:
+        threads = <int> n_blocks
     if threads > 1:
+        found = <Py_ssize_t *> malloc(threads * sizeof(Py_ssize_t))
+        if found == NULL:
+            raise MemoryError("no memory for the thread status table")
         with nogil:
-            for r in prange(start, stop, schedule="static", num_threads=threads):
-                bad += _row(xp + r * {n_in}, yp + r * {n_out})
-        if bad:
-            for r in range(start, stop):
-                if not _finite_row(xp + r * {n_in}):
-                    return r + 1
-        return 0
-    with nogil:
-        for r in range(start, stop):
-            if _row(xp + r * {n_in}, yp + r * {n_out}):
-                bad = r + 1
+            for t in prange(threads, schedule="static", num_threads=threads):
+                lo = start + (t * n_blocks // threads) * {lanes}
+                hi = start + ((t + 1) * n_blocks // threads) * {lanes}
+                found[t] = _span(xp, yp, lo, hi if hi < stop else stop)
+        for t in range(threads):
+            if found[t] != 0:
+                status = found[t]
                 break
-    return bad
+        free(found)
+    elif stop > start:
+        with nogil:
+            status = _span(xp, yp, start, stop)
+    if status < 0:
+        raise MemoryError("no memory for the kernel workspace")
+    return status
 """
 
 
 def emit(fn: Function, *, name: str) -> dict[str, str]:
     """The ``.pyx`` source of ``fn``: ``{"<name>.pyx": text}``.
 
-    Deterministic; positions only (``x[j]``, ``y[k]``, ``t<row>``). The text
-    ends with a comment holding the SHA-256 of everything above it."""
+    Deterministic; positions only (inputs, outputs and temporaries are
+    offsets into the workspace). The text ends with a comment holding the
+    SHA-256 of everything above it."""
     name = c_identifier(name)
     g = fn.graph
     n_in, n_out = fn.n_inputs, len(fn.outputs)
     if n_out == 0:
         raise ValueError("a function with no outputs has nothing to emit")
+    slot, n_slots = allocate_slots(fn)
 
     def ref(node: int) -> str:
         op = g.ops[node]
         if op == "const":
             return literal(g.data[node])
         if op == "input":
-            return f"x[{g.data[node]}]"
-        return f"t{node}"
+            return f"w[{g.data[node] * LANES} + b]"
+        return f"w[{(n_in + slot[node]) * LANES} + b]"
 
     rows = [i for i, op in enumerate(g.ops) if op not in ("const", "input")]
-    decls = "".join(f"    cdef double {', '.join(f't{i}' for i in rows[k:k + 16])}\n"
-                    for k in range(0, len(rows), 16))
-    body = [f"    t{i} = {expression(fn, i, ref, max2='_max2', powi='_powi')}\n" for i in rows]
-    body += [f"    y[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs)]
-    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, decls=decls, body="".join(body))
+    chunks = [rows[k:k + CHUNK_ROWS] for k in range(0, len(rows), CHUNK_ROWS)]
+    parts = []
+    for p, chunk in enumerate(chunks):
+        lines = [f"\ncdef void _part{p}(double *w) noexcept nogil:\n    cdef int b\n"]
+        for i in chunk:
+            rhs = expression(fn, i, ref, max2="_max2", powi="_powi")
+            lines.append(f"    for b in range({LANES}): "
+                         f"w[{(n_in + slot[i]) * LANES} + b] = {rhs}\n")
+        parts.append("".join(lines))
+    calls = "".join(f"    _part{p}(w)\n" for p in range(len(chunks))) or "    pass\n"
+    stores = "".join(f"            yr[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs))
+    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, n_slots=n_slots, lanes=LANES,
+                       lanes_less=LANES - 1, n_words=max(1, n_in + n_slots) * LANES,
+                       parts="".join(parts), calls=calls, stores=stores)
     digest = hashlib.sha256(text.encode()).hexdigest()
     text += f'\nVERSION = "sha256:{digest}"\n'
     return {f"{name}.pyx": text}
