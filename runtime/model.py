@@ -164,10 +164,11 @@ class CompiledModel:
         """Edge rates (N, n_edges) in scheme edge order."""
         return self.label_kernel(self.as_array(X))
 
-    def _outputs(self, arr, threads=None):
+    def _outputs(self, arr, threads=None, out=None):
+        """All kernel outputs (N, n_outputs), written into ``out`` if given."""
         if self.kernel is None:
             raise EvaluationError("this model was compiled for the looped numeric path only")
-        return self.kernel(arr, threads=threads)
+        return self.kernel(arr, out, threads=threads)
 
     def _require_single(self):
         if len(self.info.components) != 1:
@@ -192,7 +193,7 @@ class CompiledModel:
             a, b = self.info.groups["p"]
             direct = (out is not None and (a, b) == (0, self.kernel.n_outputs)
                       and out.flags.c_contiguous)
-            P = self._outputs_into(arr, out if direct else None, threads)[:, a:b]
+            P = self._outputs(arr, threads, out if direct else None)[:, a:b]
             # Row sums by one matrix-vector product (much faster than
             # sum(axis=1) on narrow rows); a non-finite entry spoils its sum.
             bad = ~(np.abs(P @ np.ones(P.shape[1]) - 1.0) <= 1e-9)
@@ -207,11 +208,6 @@ class CompiledModel:
                 out[...] = P
             return out
         return P if P.flags.c_contiguous else np.ascontiguousarray(P)
-
-    def _outputs_into(self, arr, out, threads):
-        if self.kernel is None:
-            raise EvaluationError("this model was compiled for the looped numeric path only")
-        return self.kernel(arr, out, threads=threads)
 
     def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
         """Rows where a tree product of labels scaled by their maximum could

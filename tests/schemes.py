@@ -1,9 +1,59 @@
-"""Scheme generators shared by the tests (graphs, not data)."""
+"""Scheme generators and the mpmath reference solve shared by the tests."""
 
 import itertools
 import random
 
+import mpmath
+
 from treeflux.compiler import Scheme
+
+
+def mp_steady_state(n, edges, rates, *, dps=50, floats=True):
+    """Reference steady state: mpmath LU solve of L p = 0 with the first
+    equation replaced by Σp = 1, at ``dps`` digits. Rates may be floats or
+    mpf (kept exact). Returns floats, or mpf values with ``floats=False``."""
+    with mpmath.workdps(dps):
+        L = mpmath.zeros(n, n)
+        for (i, j), k in zip(edges, rates):
+            k = k if isinstance(k, mpmath.mpf) else mpmath.mpf(float(k))
+            L[j, i] += k
+            L[i, i] -= k
+        for c in range(n):
+            L[0, c] = 1
+        b = mpmath.zeros(n, 1)
+        b[0] = 1
+        p = mpmath.lu_solve(L, b)
+        return [float(v) for v in p] if floats else [p[i] for i in range(n)]
+
+
+def rate_scheme(n, edges):
+    """A scheme with symbol k<e> on edge e; also the state index of each scheme state."""
+    s = Scheme()
+    for e, (i, j) in enumerate(edges):
+        s.add_edge(f"s{i}", f"s{j}", f"k{e}")
+    order = [int(name[1:]) for name in s.states]
+    return s, order
+
+
+def hypercube_scheme(d):
+    """Q_d as a Scheme: states s<i>, an independent symbol k<i>_<j> on each edge."""
+    s = Scheme(name=f"q{d}")
+    for i, j in hypercube(d)[1]:
+        s.add_edge(f"s{i}", f"s{j}", f"k{i}_{j}")
+    return s
+
+
+def lattice(a, b):
+    """An a×b grid, moves to the four neighbours: (n, edges) with state r*b + c."""
+    edges = []
+    for r in range(a):
+        for c in range(b):
+            s = r * b + c
+            if c + 1 < b:
+                edges += [(s, s + 1), (s + 1, s)]
+            if r + 1 < a:
+                edges += [(s, s + b), (s + b, s)]
+    return a * b, edges
 
 
 def hypercube(d):

@@ -17,14 +17,7 @@ from treeflux.compiler.frontend import build
 from treeflux.compiler.model import Scheme
 from treeflux.compiler.simplify import differentiate, input_derivatives, simplify
 
-
-def hypercube(d: int) -> Scheme:
-    s = Scheme(name=f"q{d}")
-    for i in range(2 ** d):
-        for b in range(d):
-            j = i ^ (1 << b)
-            s.add_edge(f"s{i}", f"s{j}", f"k{i}_{j}")
-    return s
+from .schemes import hypercube_scheme
 
 
 def binding_scheme() -> Scheme:
@@ -80,7 +73,7 @@ def to_fraction(v):
     return Fraction(int(v.p), int(v.q))
 
 
-SMALL = [("trees", hypercube(2)), ("elimination", hypercube(2)),
+SMALL = [("trees", hypercube_scheme(2)), ("elimination", hypercube_scheme(2)),
          ("trees", binding_scheme()), ("elimination", binding_scheme()),
          ("trees", ring_scheme(5, 1)), ("elimination", ring_scheme(6, 2))]
 
@@ -208,7 +201,7 @@ def test_derivatives_through_exp_log_sqrt_in_mpmath():
 
 
 def test_q4_jacobian_against_central_differences():
-    scheme = hypercube(4)   # 16 states, 64 symbols: too large for a sympy reference
+    scheme = hypercube_scheme(4)   # 16 states, 64 symbols: too large for a sympy reference
     fn = simplify(front("elimination", scheme))
     jac = differentiate(fn, mode="reverse")
     rng = np.random.default_rng(0)
@@ -229,7 +222,7 @@ def test_q4_jacobian_against_central_differences():
 
 
 def test_bad_requests_are_refused():
-    fn = simplify(front("trees", hypercube(2)))
+    fn = simplify(front("trees", hypercube_scheme(2)))
     with pytest.raises(ValueError, match="no output group 'obs'"):
         differentiate(fn, group="obs")
     with pytest.raises(ValueError, match="wrt column 99 out of range"):

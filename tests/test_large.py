@@ -11,8 +11,7 @@ from treeflux.compiler import ModelError, Scheme, TooLargeError, compile_scheme,
 from treeflux.compiler.pipeline import formula, plan
 from treeflux.compiler.structure import tree_counts
 
-from .schemes import hypercube, independent_sites, random_strong_graph
-from .test_steady_state import mp_steady_state, rate_scheme
+from .schemes import hypercube, independent_sites, mp_steady_state, random_strong_graph, rate_scheme
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 

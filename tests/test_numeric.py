@@ -10,6 +10,9 @@ import treeflux.runtime.numeric as numeric
 from treeflux.runtime.errors import EvaluationError
 from treeflux.runtime.numeric import EliminationPlan, elimination_order
 
+from . import schemes
+from .schemes import lattice, mp_steady_state
+
 
 # ----------------------------------------------------------------- helpers
 
@@ -30,42 +33,12 @@ def log_uniform(rng, shape, lo, hi):
 
 
 def hypercube(d):
-    """Independent two-state sites: bit k flips with its own rate each way."""
-    edges, site, up = [], [], []
-    for s in range(1 << d):
-        for k in range(d):
-            edges.append((s, s ^ (1 << k)))
-            site.append(k)
-            up.append(not (s >> k) & 1)
-    return 1 << d, edges, np.array(site), np.array(up)
-
-
-def lattice(a, b):
-    edges = []
-    for r in range(a):
-        for c in range(b):
-            s = r * b + c
-            if c + 1 < b:
-                edges += [(s, s + 1), (s + 1, s)]
-            if r + 1 < a:
-                edges += [(s, s + b), (s + b, s)]
-    return a * b, edges
-
-
-def mp_steady_state(n, edges, rates, dps=50):
-    """Reference: mpmath LU solve of L p = 0 with row 0 replaced by sum(p) = 1."""
-    with mpmath.workdps(dps):
-        L = mpmath.zeros(n, n)
-        for (i, j), r in zip(edges, rates):
-            r = mpmath.mpf(float(r))
-            L[j, i] += r
-            L[i, i] -= r
-        for j in range(n):
-            L[0, j] = mpmath.mpf(1)
-        rhs = mpmath.zeros(n, 1)
-        rhs[0] = mpmath.mpf(1)
-        p = mpmath.lu_solve(L, rhs)
-        return [p[i] for i in range(n)]
+    """Independent two-state sites: bit k flips with its own rate each way;
+    also the site of each edge and whether it turns the site on."""
+    n, edges = schemes.hypercube(d)
+    site = np.array([(i ^ j).bit_length() - 1 for i, j in edges])
+    up = np.array([j > i for i, j in edges])
+    return n, edges, site, up
 
 
 def max_rel_err(values, reference):
@@ -88,7 +61,7 @@ def test_matches_mpmath_on_stiff_random_graphs(n, m, seed):
     plan = EliminationPlan(n, edges)
     P = plan.steady_state(rates)
     for row in range(3):
-        ref = mp_steady_state(n, edges, rates[row])
+        ref = mp_steady_state(n, edges, rates[row], floats=False)
         assert max_rel_err(P[row], ref) <= 1e-12
 
 
@@ -106,8 +79,8 @@ def test_extreme_rates_stay_finite_and_correct():
         P = EliminationPlan(n, edges, backend=backend).steady_state(rates)
         assert np.isfinite(P).all()
         for row in range(4):
-            ref = mp_steady_state(n, edges, rates[row], dps=700)
-            assert max_rel_err([float(v) for v in ref], mp_steady_state(n, edges, rates[row], dps=900)) < 1e-15
+            ref = mp_steady_state(n, edges, rates[row], dps=700, floats=False)
+            assert max_rel_err([float(v) for v in ref], mp_steady_state(n, edges, rates[row], dps=900, floats=False)) < 1e-15
             keep = [i for i in range(n) if ref[i] > mpmath.mpf("1e-290")]
             assert max_rel_err(P[row, keep], [ref[i] for i in keep]) <= 1e-12
 
@@ -202,7 +175,7 @@ def test_fallback_without_compiler(monkeypatch):
     plan = EliminationPlan(10, edges)
     assert plan.backend == "numpy"
     rates = log_uniform(np.random.default_rng(4), (5, 30), 1e-3, 1e3)
-    ref = [mp_steady_state(10, edges, r) for r in rates]   # mpmath 50-digit reference
+    ref = [mp_steady_state(10, edges, r, floats=False) for r in rates]   # mpmath 50-digit reference
     P = plan.steady_state(rates)
     for row in range(5):
         assert max_rel_err(P[row], ref[row]) <= 1e-13

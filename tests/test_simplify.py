@@ -20,17 +20,9 @@ from treeflux.compiler.model import Scheme
 from treeflux.compiler.simplify import (canonical, factor, fold, horner, normalize, pair_cse,
                                         simplify)
 
+from .schemes import hypercube_scheme
+
 # ----------------------------------------------------------------- schemes
-
-
-def hypercube(d: int) -> Scheme:
-    """Q_d: 2^d states, an independent rate on each directed edge."""
-    s = Scheme(name=f"q{d}")
-    for i in range(2 ** d):
-        for b in range(d):
-            j = i ^ (1 << b)
-            s.add_edge(f"s{i}", f"s{j}", f"k{i}_{j}")
-    return s
 
 
 def arithmetic_scheme() -> Scheme:
@@ -85,7 +77,7 @@ def values(fn, xs, groups=("p", "basis")):
     return ir.evaluate(fn, roots, xs, "exact")
 
 
-CASES = [("trees", hypercube(2)), ("elimination", hypercube(2)),
+CASES = [("trees", hypercube_scheme(2)), ("elimination", hypercube_scheme(2)),
          ("trees", arithmetic_scheme()), ("elimination", arithmetic_scheme()),
          ("trees", random_scheme(1, 5)), ("elimination", random_scheme(2, 6)),
          ("trees", two_sinks()), ("elimination", two_sinks())]
@@ -275,7 +267,7 @@ def test_factor_never_makes_a_function_worse():
 # ----------------------------------------------------------------- normalize
 
 def test_normalize_uses_one_reciprocal_per_denominator():
-    fn = front("trees", hypercube(2))
+    fn = front("trees", hypercube_scheme(2))
     out = normalize(canonical(fn))
     # the 8 scaled labels ℓ/s and the 4 quotients ρ_i/Σρ: two reciprocals remain
     assert ir.count_ops(out.graph, out.group("p"))["div"] == 2
@@ -286,7 +278,7 @@ def test_normalize_uses_one_reciprocal_per_denominator():
 # ----------------------------------------------------------------- whole schemes
 
 def test_q3_tree_form_size_and_tree_count():
-    scheme = hypercube(3)
+    scheme = hypercube_scheme(3)
     fn = front("trees", scheme, scale=False)
     report = []
     out = simplify(fn, report=report)
@@ -340,7 +332,7 @@ def test_simplify_is_deterministic():
 
 def test_unknown_pass_name_is_refused():
     with pytest.raises(ValueError, match="unknown simplifier pass 'hoist'"):
-        simplify(front("trees", hypercube(2)), passes=["canonical", "hoist"])
+        simplify(front("trees", hypercube_scheme(2)), passes=["canonical", "hoist"])
 
 
 # ----------------------------------------------------------------- random graphs

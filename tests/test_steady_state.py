@@ -3,7 +3,6 @@ checked against references from outside the project."""
 
 import random
 
-import mpmath
 import numpy as np
 import pytest
 
@@ -11,7 +10,7 @@ from treeflux.compiler import Scheme, compile_scheme
 from treeflux.compiler.frontend.trees import rooted_trees
 from treeflux.runtime.errors import EvaluationError
 
-from .schemes import hypercube, independent_sites, random_strong_graph
+from .schemes import hypercube, independent_sites, mp_steady_state, random_strong_graph, rate_scheme
 
 
 def briggs_haldane():
@@ -71,29 +70,6 @@ def test_tree_enumeration_against_networkx():
             ours = sum(1 for _ in rooted_trees(n, edges, r))
             theirs = round(nx.number_of_spanning_trees(G, root=r))
             assert ours == theirs
-
-
-def mp_steady_state(n, edges, rates, dps=50):
-    """Reference: solve L p = 0, Σp = 1 with mpmath at 50 digits."""
-    with mpmath.workdps(dps):
-        L = mpmath.zeros(n, n)
-        for (i, j), k in zip(edges, rates):
-            k = mpmath.mpf(float(k))
-            L[j, i] += k
-            L[i, i] -= k
-        for c in range(n):
-            L[0, c] = 1
-        b = mpmath.zeros(n, 1)
-        b[0] = 1
-        return [float(v) for v in mpmath.lu_solve(L, b)]
-
-
-def rate_scheme(n, edges):
-    s = Scheme()
-    for e, (i, j) in enumerate(edges):
-        s.add_edge(f"s{i}", f"s{j}", f"k{e}")
-    order = [int(name[1:]) for name in s.states]
-    return s, order
 
 
 @pytest.mark.parametrize("method", ["trees", "elimination"])

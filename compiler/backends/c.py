@@ -298,8 +298,11 @@ def _lane_loop(target: str, rhs: str) -> str:
     return f"    for (b = 0; b < TF_LANES; b++) {target}[b] = {rhs};\n"
 
 
-def _body(fn: Function) -> str:
-    """The block function(s): inputs ``in[j][b]``, workspace ``w``, results ``res``."""
+def block_layout(fn: Function, *, input_ref, slot_ref):
+    """What every block-of-lanes emitter (C, Cython) needs: the workspace slot
+    of each computed row, the slot count, ``ref(node)`` naming a node's lane
+    value (``input_ref(column)``, ``slot_ref(slot)``, or a literal), and the
+    computed rows split into parts of at most :data:`CHUNK_ROWS`."""
     g = fn.graph
     slot, n_slots = allocate_slots(fn)
 
@@ -308,11 +311,19 @@ def _body(fn: Function) -> str:
         if op == "const":
             return literal(g.data[node])
         if op == "input":
-            return f"in[{g.data[node]}][b]"
-        return f"w[{slot[node]}][b]"
+            return input_ref(g.data[node])
+        return slot_ref(slot[node])
 
     rows = [i for i, op in enumerate(g.ops) if op not in ("const", "input")]
-    parts = [rows[k:k + CHUNK_ROWS] for k in range(0, len(rows), CHUNK_ROWS)] or [[]]
+    parts = [rows[k:k + CHUNK_ROWS] for k in range(0, len(rows), CHUNK_ROWS)]
+    return slot, n_slots, ref, parts
+
+
+def _body(fn: Function) -> str:
+    """The block function(s): inputs ``in[j][b]``, workspace ``w``, results ``res``."""
+    slot, n_slots, ref, parts = block_layout(fn, input_ref=lambda j: f"in[{j}][b]",
+                                             slot_ref=lambda k: f"w[{k}][b]")
+    parts = parts or [[]]
     out = []
     sig = "const double (*restrict in)[TF_LANES], double (*restrict w)[TF_LANES]"
     for p, chunk in enumerate(parts):

@@ -52,7 +52,7 @@ from treeflux.runtime import cache
 from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
 
 from ..ir import Function
-from .c import CHUNK_ROWS, LANES, allocate_slots, c_identifier, expression, literal
+from .c import LANES, block_layout, c_identifier, expression
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
 #: reference evaluator's and the C back end's (which compiles as ISO C99).
@@ -187,22 +187,12 @@ def emit(fn: Function, *, name: str) -> dict[str, str]:
     offsets into the workspace). The text ends with a comment holding the
     SHA-256 of everything above it."""
     name = c_identifier(name)
-    g = fn.graph
     n_in, n_out = fn.n_inputs, len(fn.outputs)
     if n_out == 0:
         raise ValueError("a function with no outputs has nothing to emit")
-    slot, n_slots = allocate_slots(fn)
-
-    def ref(node: int) -> str:
-        op = g.ops[node]
-        if op == "const":
-            return literal(g.data[node])
-        if op == "input":
-            return f"w[{g.data[node] * LANES} + b]"
-        return f"w[{(n_in + slot[node]) * LANES} + b]"
-
-    rows = [i for i, op in enumerate(g.ops) if op not in ("const", "input")]
-    chunks = [rows[k:k + CHUNK_ROWS] for k in range(0, len(rows), CHUNK_ROWS)]
+    slot, n_slots, ref, chunks = block_layout(
+        fn, input_ref=lambda j: f"w[{j * LANES} + b]",
+        slot_ref=lambda k: f"w[{(n_in + k) * LANES} + b]")
     parts = []
     for p, chunk in enumerate(chunks):
         lines = [f"\ncdef void _part{p}(double *w) noexcept nogil:\n    cdef int b\n"]
