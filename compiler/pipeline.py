@@ -203,7 +203,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     scheme.validate()
     label_fn = _label_function(scheme)
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
-    options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
+    options = {"jacobian": jacobian, "log_jacobian": log_jacobian, "jacobian_form": "log",
                "input_derivatives": input_derivatives, "name": name}
     key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
     hit = artifacts.load(key) if cache else None
@@ -247,7 +247,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         fn = _simplify(kept, report)
         timings["simplify"] = time.perf_counter() - t0
         if jacobian or input_derivatives:
-            fn = _derivatives(scheme, fn, jacobian=jacobian, log=log_jacobian,
+            fn = _derivatives(scheme, fn, jacobian=jacobian,
                               along=input_derivatives, timings=timings, report=deriv_report)
         t0 = time.perf_counter()
         kernel = back.build(ir.compact(fn), name=name)
@@ -277,13 +277,14 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
 
 def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
     method = info.method
+    info.label_trees = label_trees(scheme)
     return CompiledModel(info, kernel, label_kernel,
                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
                          profile=profile)
 
 
-def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, along: str | None,
+def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, along: str | None,
                  timings: dict, report: list) -> ir.Function:
     """Add derivative groups (``jac``, ``obs_jac``, ``d1``, ``d2``, ``obs_d1``, ``obs_d2``)."""
     from .simplify import differentiate, input_derivatives
@@ -293,9 +294,11 @@ def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, 
                          f"(the scheme has several terminal components)")
     t0 = time.perf_counter()
     if jacobian:
-        fn = differentiate(fn, group="p", log=log)
+        # Always the log form (relative adjoints: accurate on stiff rates);
+        # the runtime divides by the symbol for the plain form.
+        fn = differentiate(fn, group="p", log=True)
         if "obs" in fn.groups:
-            fn = differentiate(fn, group="obs", log=log)
+            fn = differentiate(fn, group="obs", log=True)
     if along is not None:
         names = [s.name for s in scheme.inputs]
         if along not in names:
@@ -305,6 +308,22 @@ def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, 
     fn = _simplify(fn, report)
     timings["derivatives"] = time.perf_counter() - t0
     return fn
+
+
+def label_trees(scheme: Scheme) -> list:
+    """Every edge label as plain data for the runtime's multiprecision path:
+    ``["num", "p/q"]``, ``["sym", column]``, ``[op, a]`` or ``[op, a, b]``."""
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+
+    def convert(label):
+        op = label[0]
+        if op == "num":
+            return ["num", str(label[1])]
+        if op == "sym":
+            return ["sym", column[label[1]]]
+        return [op, *(convert(a) for a in label[1:])]
+
+    return [convert(e.label) for e in scheme.edges]
 
 
 def _label_function(scheme: Scheme) -> ir.Function:

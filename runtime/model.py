@@ -42,6 +42,9 @@ class ModelInfo:
     backend: str = ""
     log_jacobian: bool = False
     tree_edges: int = 0  # trees method: edges per tree (n−1); guards underflow
+    # One label tree per edge for the multiprecision derivative path
+    # (runtime.sensitivity): ["num", "p/q"], ["sym", column], [op, a(, b)].
+    label_trees: list = field(default_factory=list)
 
 
 class CompiledModel:
@@ -306,23 +309,65 @@ class CompiledModel:
             len(self.states), len(self.info.observable_names))
 
     def jacobian(self, X, *, threads=None) -> np.ndarray:
-        """∂p_i/∂θ_j as (N, n_states, n_symbols) (∂p_i/∂log θ_j if compiled with log=True)."""
+        """∂p_i/∂θ_j as (N, n_states, n_symbols) (∂p_i/∂log θ_j if compiled with
+        log_jacobian=True). Accurate to 1e-12 of the natural size p_i/|θ_j|
+        (p_i for the log form) or refused; see :meth:`_derivatives`."""
         if "jac" not in self.info.groups:
             raise EvaluationError("compile with jacobian=True to get derivatives")
         self._require_single()
-        arr = self.as_array(X)
-        a, b = self.info.groups["jac"]
-        J = self._outputs(arr, threads)[:, a:b]
-        return J.reshape(arr.shape[0], len(self.states), len(self.symbols))
+        return self._derivatives(self.as_array(X), "jac", None, threads)
 
     def observable_jacobian(self, X, *, threads=None) -> np.ndarray:
         """∂O_k/∂θ_j as (N, n_observables, n_symbols) when compiled with jacobian."""
         if "obs_jac" not in self.info.groups:
             raise EvaluationError("compile with jacobian=True (and declare observables) for their gradients")
-        arr = self.as_array(X)
-        a, b = self.info.groups["obs_jac"]
-        J = self._outputs(arr, threads)[:, a:b]
-        return J.reshape(arr.shape[0], len(self.observable_names), len(self.symbols))
+        self._require_single()
+        return self._derivatives(self.as_array(X), "obs_jac", self.observable_weights, threads)
+
+    def _derivatives(self, arr, group, weights, threads) -> np.ndarray:
+        """The compiled log-form derivatives of ``group``, divided by θ for the
+        plain form; rows the steady-state guard does not trust, non-finite
+        entries, and plain derivatives at θ_j = 0 go to the multiprecision
+        path of :mod:`.sensitivity`. A derivative beyond float64 is refused."""
+        from .sensitivity import jacobian_rows
+
+        out = self._outputs(arr, threads)
+        N, nsym = arr.shape[0], len(self.symbols)
+        a, b = self.info.groups[group]
+        J = np.array(out[:, a:b]).reshape(N, -1, nsym)
+        pa, pb = self.info.groups["p"]
+        redo = self._untrusted_rows(arr, out[:, pa:pb])
+        zero = np.zeros_like(arr, dtype=bool)
+        if not self.info.log_jacobian:
+            zero = arr == 0
+            with np.errstate(all="ignore"):
+                J /= arr[:, None, :]
+        redo |= ~np.isfinite(J).all(axis=(1, 2))
+        rows = np.flatnonzero(redo | zero.any(axis=1))
+        if rows.size:
+            if not self.info.label_trees:
+                raise EvaluationError(f"{self.info.name}: {rows.size} rows need the safe derivative path, "
+                                      "which needs the label trees (recompile the model)")
+            n = len(self.states)
+            for r in rows:
+                cols = list(range(nsym)) if redo[r] else list(np.flatnonzero(zero[r]))
+                D = jacobian_rows(n, self.info.edges, self.info.label_trees, arr[r:r + 1],
+                                  log=self.info.log_jacobian, columns=cols, where=self.info.name)[0]
+                J[r][:, cols] = D if weights is None else weights.T @ D
+        bad = ~np.isfinite(J)
+        if bad.any():
+            r, i, j = np.argwhere(bad)[0]
+            raise EvaluationError(f"row {r}: the derivative along {self.symbols[j]!r} exceeds the float64 "
+                                  f"range at these values")
+        return J
+
+    def _untrusted_rows(self, arr, P) -> np.ndarray:
+        """Rows whose kernel steady state the guard of :meth:`steady_state`
+        would not return as it is (it recomputes them on the looped path)."""
+        bad = ~(np.abs(P @ np.ones(P.shape[1]) - 1.0) <= 1e-9)
+        if self.info.tree_edges:
+            bad |= self._tree_underflow(arr)
+        return bad
 
     def input_derivatives(self, X, *, observables: bool = False, threads=None):
         """(first, second) derivatives along the input named at compile time,

@@ -123,7 +123,8 @@ def test_compiled_model_cache_hit_skips_the_compiler(cache_dir, monkeypatch):
         compile_scheme(s, method="elimination", backend="c", jacobian=False)
     # A corrupt entry is not trusted: it is rebuilt.
     from treeflux.compiler.artifacts import model_key
-    options = {"jacobian": True, "log_jacobian": False, "input_derivatives": None, "name": "treeflux_model"}
+    options = {"jacobian": True, "log_jacobian": False, "jacobian_form": "log", "input_derivatives": None,
+                   "name": "treeflux_model"}
     entry = cache_dir / model_key(s, method="elimination", backend="c", options=options)
     (entry / "model.json").write_text("{}")
     monkeypatch.setattr(pipeline, "build", original)

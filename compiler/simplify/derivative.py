@@ -37,8 +37,25 @@ This holds for normalized outputs (p, basis, observables); it would be wrong
 for an unnormalized ρ, which is why only those groups are differentiated by
 default.
 
-**Log derivatives.** ∂out/∂log x_j = x_j ∂out/∂x_j: forward mode seeds the
-tangent of input j with x_j itself; reverse mode multiplies at the end.
+**Log derivatives.** ∂out/∂log x_j = x_j ∂out/∂x_j. Forward mode seeds the
+tangent of input j with x_j itself. Reverse mode carries *relative adjoints*
+r_v = v · ∂out/∂v (natural size: the output itself) with the local log-partials
+∂log v/∂log a_k:
+
+==========  =================================================================
+op          ∂log v/∂log a_k
+==========  =================================================================
+add         a_k / v (a weight in [0, 1] for positive sums);  sub: a/v, −b/v
+mul         +1 for every operand;  neg: +1;  div a/b: +1, −1
+exp         a;   log: 1/v;   sqrt: 1/2;   pow a^c (c const): c
+==========  =================================================================
+
+and r at input j is the log derivative itself. A raw adjoint ∂p_i/∂v has the
+size p_i/v, which under- or overflows on stiff rates (labels over [1e-100,
+1e100]) and then hands back a finite wrong number; a relative adjoint stays
+within a small multiple of p_i wherever the values themselves are
+representable, so its error is a few ulps of p_i. The plain derivative is the
+log derivative divided by x_j (the runtime does that division).
 """
 
 from __future__ import annotations
@@ -123,6 +140,32 @@ def _partials(g: Graph, v: int):
     return []  # const, input, max (a constant: see the module docstring)
 
 
+def _log_partials(g: Graph, v: int):
+    """[(k, sign, factor node or None)] of ∂log v/∂log a_k for every operand slot k."""
+    op, args = g.ops[v], g.args[v]
+    if op == "add":
+        return [(k, 1, g.div(a, v)) for k, a in enumerate(args)]
+    if op == "sub":
+        return [(0, 1, g.div(args[0], v)), (1, -1, g.div(args[1], v))]
+    if op in ("neg", "mul"):
+        return [(k, 1, None) for k in range(len(args))]
+    if op == "div":
+        return [(0, 1, None), (1, -1, None)]
+    if op == "exp":
+        return [(0, 1, args[0])]
+    if op == "log":
+        return [(0, 1, g.div(g.const(1), v))]
+    if op == "sqrt":
+        return [(0, 1, g.const(Fraction(1, 2)))]
+    if op == "pow":
+        a, b = args
+        if g.ops[b] == "const":
+            c = g.data[b]
+            return [] if c == 0 else [(0, 1 if c > 0 else -1, g.const(abs(c)))]
+        return [(0, 1, b), (1, 1, g.mul(b, g.log(a)))]
+    return []  # const, input, max (a constant: see the module docstring)
+
+
 def _settle(e: _Emit, pos: list, neg: list, merge: bool):
     p, n = e.add(pos), e.add(neg)
     if merge and p is not None and n is not None:
@@ -189,6 +232,35 @@ def _reverse(g: Graph, root: int, n_inputs: int, merge: bool):
     return grad
 
 
+def _reverse_log(g: Graph, root: int, n_inputs: int, merge: bool):
+    """Relative adjoint parts (P, N) of every input for ``root``: x_j ∂root/∂x_j."""
+    e = _Emit(g)
+    acc: dict[int, tuple[list, list]] = {root: ([root], [])}
+    grad = [(None, None)] * n_inputs
+    for v in reversed(live(g, [root])):
+        lists = acc.pop(v, None)
+        if lists is None:
+            continue
+        p, n = _settle(e, lists[0], lists[1], merge)
+        if p is None and n is None:
+            continue
+        if g.ops[v] == "input":
+            grad[g.data[v]] = (p, n)
+            continue
+        args = g.args[v]
+        for k, sign, factor in _log_partials(g, v):
+            mult = () if factor is None else (factor,)
+            cp, cn = e.scale(p, mult, ()), e.scale(n, mult, ())
+            if sign < 0:
+                cp, cn = cn, cp
+            slot = acc.setdefault(args[k], ([], []))
+            if cp is not None:
+                slot[0].append(cp)
+            if cn is not None:
+                slot[1].append(cn)
+    return grad
+
+
 def _check_group(fn: Function, group: str):
     if group not in fn.groups:
         raise ValueError(f"no output group {group!r} to differentiate; groups are {sorted(fn.groups)}")
@@ -202,6 +274,11 @@ def _jacobian_nodes(g: Graph, outs, n_inputs, wrt, log, mode, merge):
             seed = g.input(j) if log else g.const(1)
             for r, (p, n) in enumerate(_forward(g, outs, j, seed, merge)):
                 rows[r][c] = e.combine(p, n)
+    elif mode == "relative":
+        for r, out in enumerate(outs):
+            grad = _reverse_log(g, out, n_inputs, merge)
+            for c, j in enumerate(wrt):
+                rows[r][c] = e.combine(*grad[j])
     else:
         for r, out in enumerate(outs):
             grad = _reverse(g, out, n_inputs, merge)
@@ -228,9 +305,11 @@ def differentiate(fn: Function, *, group: str = "p", wrt=None, log: bool = False
         Input columns (symbols); default all, in order.
     log : bool, keyword-only
         Derivatives with respect to log x_j: x_j ∂out_i/∂x_j.
-    mode : {"auto", "forward", "reverse"}, keyword-only
+    mode : {"auto", "forward", "reverse", "relative"}, keyword-only
         Forward costs a sweep per input, reverse a sweep per output. ``auto``
-        builds both and keeps the one with fewer operations (by count).
+        builds both and keeps the one with fewer operations (by count);
+        with ``log`` it is ``relative`` (reverse mode on relative adjoints,
+        accurate on stiff rates; see the module docstring).
     signs : {"merge", "split"}, keyword-only
         See the module docstring.
     name : str, optional, keyword-only
@@ -244,8 +323,10 @@ def differentiate(fn: Function, *, group: str = "p", wrt=None, log: bool = False
         entry (i, j) = ∂out_i/∂x_{wrt[j]}.
     """
     _check_group(fn, group)
-    if mode not in ("auto", "forward", "reverse"):
-        raise ValueError(f"unknown differentiation mode {mode!r}; use auto, forward or reverse")
+    if mode not in ("auto", "forward", "reverse", "relative"):
+        raise ValueError(f"unknown differentiation mode {mode!r}; use auto, forward, reverse or relative")
+    if mode == "relative" and not log:
+        raise ValueError("relative adjoints give log derivatives: pass log=True")
     if signs not in ("merge", "split"):
         raise ValueError(f"unknown signs option {signs!r}; use merge or split")
     wrt = list(range(fn.n_inputs)) if wrt is None else [int(j) for j in wrt]
@@ -255,7 +336,7 @@ def differentiate(fn: Function, *, group: str = "p", wrt=None, log: bool = False
     name = name or ("jac" if group in ("p", "basis") else f"{group}_jac")
     if name in fn.groups:
         raise ValueError(f"output group {name!r} already exists")
-    modes = ("forward", "reverse") if mode == "auto" else (mode,)
+    modes = (("relative",) if log else ("forward", "reverse")) if mode == "auto" else (mode,)
     best = None
     for m in modes:
         out = compact(fn)
