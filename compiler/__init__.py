@@ -12,7 +12,7 @@ __version__ = "0.1.0"
 
 from .errors import ModelError, TooLargeError  # noqa: E402
 from .model import Scheme  # noqa: E402
-from .parse import load  # noqa: E402
+from .parse import from_data, load  # noqa: E402
 from .pipeline import compile_scheme  # noqa: E402
 
-__all__ = ["Scheme", "load", "compile_scheme", "ModelError", "TooLargeError", "__version__"]
+__all__ = ["Scheme", "load", "from_data", "compile_scheme", "ModelError", "TooLargeError", "__version__"]

@@ -141,7 +141,8 @@ def label_text(label: Label) -> str:
 
 # ---------------------------------------------------------------- model files
 
-_TOP_KEYS = {"name", "description", "parameters", "inputs", "edges", "observables"}
+_TOP_KEYS = {"name", "description", "parameters", "inputs", "edges", "observables",
+             "pairs", "parts", "couplings", "composition"}
 _SYMBOL_KEYS = {"value", "min", "max", "description", "unit"}
 _EDGE_KEYS = {"source", "target", "rate", "description"}
 
@@ -168,10 +169,21 @@ def load(path) -> "Scheme":
         raise ModelError(f"{where}: model file is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as exc:
         raise ModelError(f"{where}: not valid TOML ({exc})") from None
+    return from_data(data, where=where, default_name=path.stem)
+
+
+def from_data(data: dict, *, where: str = "scheme", default_name: str = "scheme") -> "Scheme":
+    """A Scheme from the tables of a model file already read into dictionaries
+    (the same keys as the TOML file: parameters, inputs, edges, pairs, parts,
+    couplings, composition, observables). ``where`` names it in errors."""
+    from .model import Scheme
+
+    if not isinstance(data, dict):
+        raise ModelError(f"{where}: a model description is a table (dict)")
     unknown = set(data) - _TOP_KEYS
     if unknown:
         raise ModelError(f"{where}: unknown top-level key(s) {', '.join(sorted(unknown))}")
-    name = data.get("name", path.stem)
+    name = data.get("name", default_name)
     if not isinstance(name, str):
         raise ModelError(f"{where}: 'name' must be a string")
     scheme = Scheme(name=name, origin=where)
@@ -201,12 +213,25 @@ def load(path) -> "Scheme":
             if key not in edge:
                 raise ModelError(f"{where}: edge {i} is missing '{key}'")
         scheme.add_edge(edge["source"], edge["target"], edge["rate"])
+    from . import compose
+    if "pairs" in data:
+        compose.add_pairs(scheme, data["pairs"], where)
+    composition = None
+    if "parts" in data:
+        composition = compose.compose(scheme, data, where)
+    elif "couplings" in data or "composition" in data:
+        raise ModelError(f"{where}: 'couplings' and [composition] need [parts]")
     observables = data.get("observables", {})
     if not isinstance(observables, dict):
         raise ModelError(f"{where}: [observables] must be a table")
     for obs, weights in observables.items():
         if not isinstance(weights, dict):
             raise ModelError(f"{where}: observable {obs!r} must map state names to weights")
+        if "parts" in weights:
+            if composition is None or len(weights) != 1:
+                raise ModelError(f"{where}: observable {obs!r}: {{ parts = ... }} stands alone, "
+                                 "in a composed scheme")
+            weights = compose.count_weights(composition, weights["parts"], f"{where}: observable {obs!r}")
         scheme.add_observable(obs, weights)
     scheme.validate()
     return scheme
