@@ -234,6 +234,8 @@ def build_parser() -> argparse.ArgumentParser:
         cli_analysis = None
     if cli_analysis is not None:
         cli_analysis.register(sub)
+    from . import cli_language
+    cli_language.register(sub)
     return p
 
 

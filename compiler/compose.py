@@ -351,7 +351,9 @@ def compose(scheme, data: dict, where: str) -> dict:
                             label = ("mul", label, factor)
                 target = combo[:slot] + (step.target,) + combo[slot + 1:]
                 scheme.add_edge(names[combo], names[target], step.rate if label is plain else label_text(label))
-    return {"parts": parts, "names": names}
+    composition = {"parts": parts, "names": names}
+    scheme.composition = composition  # for drawings laid out along the parts
+    return composition
 
 
 def _show(parts, combo) -> str:

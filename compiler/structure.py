@@ -354,7 +354,10 @@ def detailed_balance(scheme) -> dict:
                     "reason": f"cycle {path}: the product of forward rates differs from the "
                               f"product of reverse rates for all values"}
         if status == "depends":
-            conditions.append(f"{sympy.sstr(fwd)} = {sympy.sstr(rev)}")
+            conditions.append(fwd / rev)
+    if conditions:
+        from .balance import condition_texts, reduce_conditions
+        conditions = condition_texts(reduce_conditions(conditions))
     named = [[states[s] for s in c] for c in cycles]
     if conditions:
         return {"verdict": "conditional", "conditions": conditions, "cycles": named,
