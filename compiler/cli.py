@@ -113,21 +113,22 @@ def cmd_eval(args) -> int:
 
 
 def cmd_formula(args) -> int:
-    import sympy
-    from .pipeline import formula, plan
+    from .formula import coefficient_form, shared_form, substituted
+    from .pipeline import plan
     scheme = load_model(args.model)
-    states = [args.state] if args.state else list(scheme.states)
-    for s in states:
-        if s not in scheme.states:
-            raise UsageError(f"unknown state {s!r}; states are {', '.join(scheme.states)}")
-    method = plan(scheme, args.method).method
-    method = "trees" if args.expand else ("elimination" if method in ("numeric", "equilibrium") else method)
-    for s in states:
-        expr = formula(scheme, s, method=method, expand=args.expand)
-        text = sympy.latex(expr) if args.latex else sympy.sstr(expr)
-        print(f"rho[{s}] = {text}")
-    if not args.state:
-        print("p[S] = rho[S] / (sum of rho over all states)")
+    sets = parse_sets(args.set)
+    if args.collect:
+        names = [c.strip() for c in args.collect.split(",") if c.strip()]
+        text = coefficient_form(scheme, collect=names, state=args.state, observable=args.observable,
+                                sets=sets, latex=args.latex)
+    else:
+        method = "trees" if args.expand else args.method
+        if method in ("auto", "numeric"):
+            chosen = plan(substituted(scheme, sets), "auto").method
+            method = "equilibrium" if chosen == "equilibrium" else "elimination"
+        text = shared_form(scheme, state=args.state, observable=args.observable, method=method,
+                           sets=sets, latex=args.latex)
+    sys.stdout.write(text)
     return 0
 
 
@@ -206,11 +207,15 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_eval)
 
-    q = sub.add_parser("formula", help="closed form of the steady state")
+    q = sub.add_parser("formula", help="closed form of the steady state (shared form, or polynomial "
+                                      "coefficients with --collect)")
     q.add_argument("model")
     q.add_argument("--state")
+    q.add_argument("--observable")
+    q.add_argument("--set", action="append", metavar="NAME=VALUE", help="substitute a value first (P=0)")
+    q.add_argument("--collect", metavar="C1,C2", help="numerator and denominator as polynomials in these")
     q.add_argument("--latex", action="store_true")
-    q.add_argument("--expand", action="store_true", help="sum over spanning trees instead of the nested form")
+    q.add_argument("--expand", action="store_true", help="sums over spanning trees instead of elimination")
     q.add_argument("--method", default="auto", choices=methods)
     q.set_defaults(handler=cmd_formula)
 

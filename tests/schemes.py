@@ -89,3 +89,39 @@ def random_strong_graph(n, *, extra, rng=None):
     rng.shuffle(candidates)
     edges.update(candidates[:extra])
     return sorted(edges)
+
+
+def exact_solve(A, b):
+    """Gauss-Jordan elimination in exact rationals (lists of Fractions)."""
+    n = len(A)
+    M = [list(row) + [x] for row, x in zip(A, b)]
+    for c in range(n):
+        piv = next(r for r in range(c, n) if M[r][c] != 0)
+        M[c], M[piv] = M[piv], M[c]
+        for r in range(n):
+            if r != c and M[r][c] != 0:
+                f = M[r][c] / M[c][c]
+                M[r] = [x - f * y for x, y in zip(M[r], M[c])]
+    return [M[r][n] / M[r][r] for r in range(n)]
+
+
+def exact_steady_state(scheme, values):
+    """{state: Fraction}: labels evaluated exactly at ``values`` (name → Fraction),
+    then L p = 0, Σ p = 1 solved in exact rationals (a scheme with one terminal
+    component)."""
+    from fractions import Fraction
+
+    from treeflux.compiler.ir import Graph, evaluate, lower_label
+
+    g = Graph()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    nodes = [lower_label(g, e.label, column) for e in scheme.edges]
+    rates = evaluate(g, nodes, [values[s] for s in scheme.symbols], "exact")
+    n = len(scheme.states)
+    A = [[Fraction(0)] * n for _ in range(n)]
+    for (i, j), k in zip(scheme.edge_list(), rates):
+        A[j][i] += k
+        A[i][i] -= k
+    A[0] = [Fraction(1)] * n
+    p = exact_solve(A, [Fraction(1)] + [Fraction(0)] * (n - 1))
+    return dict(zip(scheme.states, p))

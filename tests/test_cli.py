@@ -54,7 +54,7 @@ def test_eval_json_matches_closed_form(capsys):
 
 def test_formula_and_compile(tmp_path, capsys):
     assert main(["formula", str(ENZYME), "--state", "ES"]) == 0
-    assert "rho[ES] = S*k_on*ki_off" in capsys.readouterr().out
+    assert "rho_ES = k_on*S/(k_off + k_cat)" in capsys.readouterr().out
     assert main(["compile", str(ENZYME), "--target", "python", "-o", str(tmp_path)]) == 0
     files = sorted(p.name for p in tmp_path.iterdir())
     stem = "hydrolase_with_a_competitive_inhibitor"
