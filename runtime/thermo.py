@@ -361,7 +361,7 @@ def thermodynamics(model, values=None, *, cycles=None, tolerance: float | None =
         result["entropy_production_error"] = None
         result["entropy_production_note"] = (
             f"infinite: {', '.join(infinite[:5])}{' ...' if len(infinite) > 5 else ''} "
-            f"carry flux with no reverse transition")
+            f"{'carries' if len(infinite) == 1 else 'carry'} flux with no reverse transition")
     else:
         result["entropy_production"] = sigma
         result["entropy_production_error"] = sigma_err

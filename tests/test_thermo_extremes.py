@@ -297,3 +297,26 @@ def test_several_terminal_components_at_zero_concentration_refused():
     m = compile_scheme(s, method="elimination")
     with pytest.raises(EvaluationError, match=r"zero rate on .*D->B"):
         thermodynamics(m, {"k": 1.0, "c": 0.0})
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_stiff_ring_one_rate_off_balance(seed):
+    # a ring with rates log-uniform over [1e-12, 1e12], balanced through its
+    # last reverse rate, then one rate ×1.01: σ to 1e-10 of mpmath (50 digits)
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(4, 8))
+    edges = ring_edges(n)
+    while True:
+        rates = 10 ** rng.uniform(-12, 12, len(edges))
+        lb = sum(math.log10(rates[2 * i]) for i in range(n)) - sum(math.log10(rates[2 * i + 1])
+                                                                   for i in range(n - 1))
+        if -12 <= lb <= 12:
+            rates[2 * n - 1] = 10 ** lb
+            break
+    rates[int(rng.integers(len(edges)))] *= 1.01
+    m = _model(n, edges, "trees" if seed % 2 else "elimination")
+    r = _run(m, rates)
+    ref, _ = mp_sigma(n, edges, rates)
+    assert r["entropy_production"] > 0
+    assert r["entropy_production"] == pytest.approx(float(ref), rel=1e-10)
+    assert abs(r["entropy_production"] - float(ref)) <= r["entropy_production_error"]
