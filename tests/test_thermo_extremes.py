@@ -320,3 +320,18 @@ def test_stiff_ring_one_rate_off_balance(seed):
     assert r["entropy_production"] > 0
     assert r["entropy_production"] == pytest.approx(float(ref), rel=1e-10)
     assert abs(r["entropy_production"] - float(ref)) <= r["entropy_production_error"]
+
+
+def test_too_large_for_exact_path_says_so(monkeypatch):
+    # beyond the work limit the float steady state is used and no bound is claimed
+    import treeflux.runtime.thermo as th
+    monkeypatch.setattr(th, "EXACT_WORK_LIMIT", 0)
+    n = 5
+    edges = ring_edges(n)
+    rates = balanced_rates(n, edges, 1e-3, 1e3, np.random.default_rng(2))
+    rates[0] *= 1.5
+    r = _run(_model(n, edges), rates)
+    ref, _ = mp_sigma(n, edges, rates)
+    assert r["exact_fluxes"] is False and r["entropy_production_error"] is None
+    assert "no error bound" in r["error_note"]
+    assert r["entropy_production"] == pytest.approx(float(ref), rel=1e-10)   # far from balance: fine
