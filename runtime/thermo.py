@@ -31,7 +31,8 @@ pairs carry bit-identical fluxes, each pair's term J·ln(a/b) is formed
 from one exact a − b (so it is ≥ 0, and 0 exactly when a = b), and
 ``entropy_production_error`` is a proven bound on the remaining rounding:
 ≤ 2u per term from the flux and product, the logarithm's bound
-(:func:`_ln_ratio`), and u σ for the exactly rounded sum (math.fsum).
+(:func:`_ln_ratio`, which takes the C library's log and log1p to be within
+one ulp), and u σ for the correctly rounded sum (math.fsum).
 Rounding in the evaluation of the rates themselves is outside the bound (the
 rates are taken as given). Schemes whose rational elimination would be too
 costly (EXACT_WORK_LIMIT) fall back to the float steady state and say so
@@ -130,22 +131,24 @@ def exact_steady_state(n: int, edges, rates, order=None) -> list[Fraction]:
 def _ln_ratio(a: Fraction, b: Fraction) -> tuple[float, float]:
     """ln(a/b) for exact positive a, b, and a bound on its absolute error.
 
-    Near 1 it is log1p of the exactly formed (a − b)/b (relative error
-    ≤ 4u: the rounding of the argument, amplified at most 1.5× for |x| ≤ ½,
-    plus the library's last-bit error); otherwise log of the correctly
-    rounded ratio (|ln| ≥ ln 1.5, so absolute error u + last bit), and for
-    ratios beyond float range the difference of the integer logs."""
+    Near 1 it is log1p of the exactly formed x = (a − b)/b: rounding x costs
+    at most 2u relative for |x| ≤ ½ (|log1p(x)| ≥ |x|/(1 + |x|) for x > 0,
+    ≥ |x| for x < 0), the library's result at most 1 ulp (≤ 2u; glibc's
+    documented maximum for log and log1p); the bound allows 6u. Otherwise log of
+    the correctly rounded ratio (absolute error ≤ u from the argument, plus
+    the last bit), and for ratios beyond float range the difference of the
+    integer logs (each within a few ulp of its own size)."""
     q = Fraction(a) / Fraction(b)
     x = q - 1
     if abs(x) <= Fraction(1, 2):
         L = math.log1p(float(x))
-        return L, 4 * _U * abs(L)
+        return L, 6 * _U * abs(L)
     if Fraction(2.0 ** -1000) < q < Fraction(2.0 ** 1000):
         L = math.log(float(q))
-        return L, 3 * _U * abs(L) + _U
+        return L, 4 * _U * abs(L) + 1.01 * _U
     ln_n, ln_d = math.log(q.numerator), math.log(q.denominator)
     L = ln_n - ln_d
-    return L, 3 * _U * (abs(ln_n) + abs(ln_d)) + _U * abs(L)
+    return L, 4 * _U * (abs(ln_n) + abs(ln_d)) + 2 * _U * abs(L)
 
 
 # ------------------------------------------------------------------ the analysis
