@@ -51,7 +51,6 @@ from __future__ import annotations
 import math
 from fractions import Fraction
 
-import numpy as np
 
 from .errors import EvaluationError
 from .graph import fundamental_cycles, terminal_components
