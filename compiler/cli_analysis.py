@@ -121,13 +121,23 @@ def cmd_response(args) -> int:
 
 # ------------------------------------------------------------------ thermo
 
+def _naming_file(path, fn, *a, **kw):
+    """Run an analysis; a refusal at evaluation names the model file."""
+    try:
+        return fn(*a, **kw)
+    except EvaluationError as exc:
+        if str(path) in str(exc):
+            raise
+        raise EvaluationError(f"{path}: {exc}") from None
+
+
 def cmd_thermo(args) -> int:
     from treeflux.runtime.analysis import thermodynamics
     from .structure import detailed_balance
     values = _values(args)
     scheme, model = _compile(args.model, args.method, args.backend)
-    r = thermodynamics(model, values)
     verdict = detailed_balance(scheme)
+    r = _naming_file(args.model, thermodynamics, model, values, balanced=verdict["verdict"] is True)
     numeric = r["detailed_balance"]
     r["detailed_balance"] = {
         "verdict": verdict["verdict"],
@@ -140,21 +150,34 @@ def cmd_thermo(args) -> int:
     if args.json:
         _emit(r)
         return 0
-    sigma = r["entropy_production"]
+    sigma, err = r["entropy_production"], r["entropy_production_error"]
     print(f"thermodynamics of {scheme.name} at the given values (model predictions):")
-    print(f"  entropy production: {_g(sigma) if sigma is not None else 'infinite'} k_B per unit time"
-          + (f"  ({r['entropy_production_note']})" if sigma is None else ""))
+    if sigma is None:
+        print(f"  entropy production: {r['entropy_production_note']}")
+    else:
+        bound = f" ± {err:.2g}" if err is not None else " (no error bound)"
+        print(f"  entropy production: {sigma:.10g}{bound} k_B per unit time")
+    print(f"  {r['error_note']}")
     print("  net fluxes:")
     for k, v in r["fluxes"].items():
-        print(f"    {k:<20} {v:.6g}{'  (one-way)' if k in r['one_way_edges'] else ''}")
+        print(f"    {k:<20} {v:.10g}")
+    if r["one_way_edges"]:
+        print(f"  one-way at these values: {', '.join(r['one_way_edges'])}")
+    if r["absent_edges"]:
+        print(f"  absent (zero rate) at these values: {', '.join(r['absent_edges'])}")
     if r["affinities"]:
         print("  cycle affinities:")
         for c in r["affinities"]:
             a = c["affinity"]
             print(f"    {'->'.join(c['states'] + c['states'][:1]):<30} "
                   f"{_g(a) if a is not None else c.get('note', 'undefined')}")
+    if "entropy_production_cycles" in r:
+        e = r["entropy_production_cycles_error"]
+        print(f"  entropy production from the cycle basis: {r['entropy_production_cycles']:.10g}"
+              + (f" ± {e:.2g}" if e is not None else ""))
     db = r["detailed_balance"]
-    print(f"  detailed balance: {db['verdict']} ({db['reason']}); at these values: {db['holds_at_values']}")
+    print(f"  detailed balance: {db['verdict']} ({db['reason']}); at these values: "
+          f"{db['holds_at_values']} ({db['numeric_reason']})")
     for cond in db["conditions"]:
         print(f"    condition: {cond}")
     return 0
@@ -169,13 +192,23 @@ def cmd_passage(args) -> int:
         raise EvaluationError(f"--to {args.to!r}: give one or more target states separated by commas")
     values = _values(args)
     _, model = _compile(args.model, args.method, args.backend)
-    r = mean_first_passage(model, values, source=args.source, targets=targets)
+    r = _naming_file(args.model, mean_first_passage, model, values, source=args.source, targets=targets)
     if args.json:
         _emit(r)
         return 0
     t = r["mean_time"]
     print(f"mean first-passage time {args.source} -> {{{', '.join(targets)}}}: "
-          f"{'infinite' if t is None else f'{t:.6g}'} (model prediction)")
+          f"{'infinite' if t is None else f'{t:.10g}'} (model prediction)")
+    if r["absent_edges"]:
+        print(f"  absent (zero rate) at these values: {', '.join(r['absent_edges'])}")
+    if "trapped_in" in r:
+        print(f"  infinite: the chain can reach {', '.join(r['trapped_in'])}, from which no target is reachable")
+    if "absorption" in r:
+        print("  probability of reaching each target first:")
+        for k, v in r["absorption"].items():
+            print(f"    {k:<20} {v:.10g}")
+        if r["never"]:
+            print(f"    {'(none, trapped)':<20} {r['never']:.10g}")
     return 0
 
 
