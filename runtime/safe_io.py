@@ -159,8 +159,13 @@ def _publish_all(staged: list[tuple[Path, Path]]) -> None:
             tmp, path = staged[0]
             check_target(path)  # again, just before the rename: nothing special appeared meanwhile
             backup = _keep_old(path)
+            try:
+                os.replace(tmp, path)
+            except BaseException:
+                if backup is not None:
+                    _unlink(backup)  # the old file is still in place under its own name
+                raise
             done.append((path, backup))
-            os.replace(tmp, path)
             staged.pop(0)
     except BaseException as exc:
         for path, backup in reversed(done):
