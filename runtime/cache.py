@@ -55,6 +55,7 @@ import tempfile
 import threading
 from collections import OrderedDict
 from contextlib import contextmanager
+from functools import lru_cache
 from pathlib import Path
 
 from .errors import TreefluxError
@@ -92,8 +93,9 @@ def root() -> Path:
     return Path(base) / "treeflux"
 
 
+@lru_cache(maxsize=1)
 def host_features() -> str:
-    """The host CPU as far as generated native code depends on it."""
+    """The host CPU as far as generated native code depends on it (read once per process)."""
     flags = ""
     try:
         with open("/proc/cpuinfo") as fh:
@@ -152,8 +154,14 @@ def _read_own(path: Path, *, private=False, limit=1 << 16) -> bytes:
             why = "readable by other users"
         if why:
             raise CacheError(f"cache file {path} is {why}")
-        with os.fdopen(os.dup(fd), "rb") as fh:
-            data = fh.read(limit + 1)
+        chunks, size = [], 0
+        while size <= limit:
+            chunk = os.read(fd, limit + 1 - size)
+            if not chunk:
+                break
+            chunks.append(chunk)
+            size += len(chunk)
+        data = b"".join(chunks)
         if len(data) > limit:
             raise CacheError(f"cache file {path} is larger than any file treeflux writes there")
         return data
@@ -179,9 +187,41 @@ def _create_file(folder: Path, name: str, data: bytes, mode: int) -> None:
         os.unlink(tmp)
 
 
+_checked: dict[str, tuple] = {}  # configured root → (identity of the root folder, root, key)
+
+
+def _identity(st: os.stat_result) -> tuple:
+    return st.st_dev, st.st_ino, st.st_uid, st.st_mode
+
+
 def _ensure_root(create: bool) -> tuple[Path, bytes] | None:
     """(root, secret key) after checking the root, creating and marking it if
-    asked; None if there is no cache and ``create`` is false."""
+    asked; None if there is no cache and ``create`` is false.
+
+    For fetches (``create``) the full check runs once per process and root;
+    later ones only confirm
+    with one ``lstat`` that the root is the same folder with the same owner
+    and mode (what passed the check — folders above it owned by this user or
+    root and closed to others, a key only this user can read — can change
+    only at the hands of this user or root)."""
+    if not create:  # info and clear: always the full check
+        return _check_root(create)
+    configured = str(root())
+    seen = _checked.get(configured)
+    if seen is not None:
+        try:
+            if _identity(os.lstat(seen[1])) == seen[0]:
+                return seen[1], seen[2]
+        except OSError:
+            pass
+        del _checked[configured]
+    state = _check_root(create)
+    if state is not None:
+        _checked[configured] = (_identity(os.lstat(state[0])), *state)
+    return state
+
+
+def _check_root(create: bool) -> tuple[Path, bytes] | None:
     top = Path(os.path.realpath(root()))
     try:
         _check_ancestors(top)
@@ -224,10 +264,13 @@ def _ensure_root(create: bool) -> tuple[Path, bytes] | None:
 
 def _own_folder(path: Path) -> None:
     try:
-        os.mkdir(path, 0o700)
-    except FileExistsError:
-        pass
-    st = os.lstat(path)
+        st = os.lstat(path)
+    except FileNotFoundError:
+        try:
+            os.mkdir(path, 0o700)
+        except FileExistsError:
+            pass
+        st = os.lstat(path)
     why = "not a folder" if not stat.S_ISDIR(st.st_mode) else _unsafe(st)
     if why:
         raise CacheError(f"cache folder {path} is {why}")
