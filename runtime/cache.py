@@ -422,6 +422,16 @@ def fetch(key: str, build) -> Path:
     is given. Raises :class:`CacheError` if the cache folder is unsafe."""
     if not _KEY.fullmatch(key):
         raise CacheError(f"bad cache key {key!r}")
+    return _get(key, build)
+
+
+def lookup(key: str) -> Path | None:
+    """The folder of verified entry ``key`` (pinned, as :func:`fetch`), or None
+    if there is none: an entry that fails verification is moved aside."""
+    return _get(key, None) if _KEY.fullmatch(key) else None
+
+
+def _get(key: str, build) -> Path | None:
     top, secret = _ensure_root(create=True)
     entry = top / key
     _pin(top, key)
@@ -430,32 +440,17 @@ def fetch(key: str, build) -> Path:
     with _locked(top, f"{key}.build"):
         if _verified(entry, key, secret):
             return entry
+        _quarantine(top, entry)
+        if build is None:
+            return None
         work = Path(tempfile.mkdtemp(prefix=f".build-{key[:12]}-", dir=top))
         try:
             build(work)
             _seal(work, key, secret)
-            _quarantine(top, entry)
             os.rename(work, entry)
         except BaseException:
             shutil.rmtree(work, ignore_errors=True)
             raise
-    return entry
-
-
-def lookup(key: str) -> Path | None:
-    """The folder of verified entry ``key`` (pinned, as :func:`fetch`), or None
-    if there is none: an entry that fails verification is moved aside."""
-    if not _KEY.fullmatch(key):
-        return None
-    top, secret = _ensure_root(create=True)
-    entry = top / key
-    _pin(top, key)
-    if _verified(entry, key, secret):
-        return entry
-    with _locked(top, f"{key}.build"):
-        if not _verified(entry, key, secret):
-            _quarantine(top, entry)
-            return None
     return entry
 
 

@@ -17,30 +17,8 @@ from treeflux.runtime import safe_io
 from treeflux.runtime.safe_io import OutputError, output_path, write_file, write_files
 
 from .schemes import independent_sites
+from .test_cli_analysis import SWITCH  # an invented two-state switch, input s
 
-SWITCH = """
-name = "signal switch"
-
-[parameters]
-kon  = { value = 2.0, min = 0.05, max = 50.0 }
-koff = { value = 4.0 }
-
-[inputs]
-s = { value = 1.0, min = 0.01, max = 100.0 }
-
-[[edges]]
-source = "Off"
-target = "On"
-rate = "kon*s"
-
-[[edges]]
-source = "On"
-target = "Off"
-rate = "koff"
-
-[observables]
-on = { "On" = 1.0 }
-"""
 
 
 @pytest.fixture(autouse=True)
@@ -127,17 +105,22 @@ def _old_pair(folder: Path):
     (folder / "m.h").write_text("old h")
 
 
+def _fail_second(monkeypatch, name, exc):
+    """Make the second call of ``os.<name>`` inside safe_io raise ``exc``."""
+    real, calls = getattr(os, name), []
+
+    def failing(*args):
+        calls.append(args)
+        if len(calls) == 2:
+            raise exc
+        return real(*args)
+
+    monkeypatch.setattr(safe_io.os, name, failing)
+
+
 def test_failed_second_rename_puts_everything_back(tmp_path, monkeypatch):
     _old_pair(tmp_path)
-    real_replace, calls = os.replace, []
-
-    def failing(src, dst):
-        calls.append(dst)
-        if len(calls) == 2:
-            raise OSError(28, "No space left on device")
-        return real_replace(src, dst)
-
-    monkeypatch.setattr(safe_io.os, "replace", failing)
+    _fail_second(monkeypatch, "replace", OSError(28, "No space left on device"))
     with pytest.raises(OutputError, match="No space left on device"):
         write_files({tmp_path / "m.c": "new c", tmp_path / "m.h": "new h", tmp_path / "m.json": "{}"})
     monkeypatch.undo()
@@ -148,15 +131,7 @@ def test_failed_second_rename_puts_everything_back(tmp_path, monkeypatch):
 
 def test_interrupt_during_publication_rolls_back_and_propagates(tmp_path, monkeypatch):
     _old_pair(tmp_path)
-    real_replace, calls = os.replace, []
-
-    def interrupted(src, dst):
-        calls.append(dst)
-        if len(calls) == 2:
-            raise KeyboardInterrupt
-        return real_replace(src, dst)
-
-    monkeypatch.setattr(safe_io.os, "replace", interrupted)
+    _fail_second(monkeypatch, "replace", KeyboardInterrupt())
     with pytest.raises(KeyboardInterrupt):
         write_files({tmp_path / "m.c": "new c", tmp_path / "m.h": "new h"})
     monkeypatch.undo()
@@ -166,15 +141,7 @@ def test_interrupt_during_publication_rolls_back_and_propagates(tmp_path, monkey
 
 def test_failed_second_write_touches_nothing(tmp_path, monkeypatch):
     _old_pair(tmp_path)
-    real_fsync, calls = os.fsync, []
-
-    def failing(fd):
-        calls.append(fd)
-        if len(calls) == 2:
-            raise OSError(5, "Input/output error")
-        return real_fsync(fd)
-
-    monkeypatch.setattr(safe_io.os, "fsync", failing)
+    _fail_second(monkeypatch, "fsync", OSError(5, "Input/output error"))
     with pytest.raises(OutputError, match="Input/output error"):
         write_files({tmp_path / "m.c": "new c", tmp_path / "m.h": "new h"})
     monkeypatch.undo()
@@ -217,15 +184,7 @@ def test_emit_failure_keeps_the_old_sources(tmp_path, monkeypatch):
     for p in first:  # make every file differ from what emit will write
         p.write_bytes(b"/* previous version */\n" + old[p.name])
     before = {p.name: p.read_bytes() for p in first}
-    real_replace, calls = os.replace, []
-
-    def failing(src, dst):
-        calls.append(dst)
-        if len(calls) == 2:
-            raise OSError(28, "No space left on device")
-        return real_replace(src, dst)
-
-    monkeypatch.setattr(safe_io.os, "replace", failing)
+    _fail_second(monkeypatch, "replace", OSError(28, "No space left on device"))
     with pytest.raises(OutputError):
         model.emit("c", out)
     monkeypatch.undo()
