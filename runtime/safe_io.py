@@ -116,8 +116,9 @@ def _unlink(path) -> None:
 
 
 def _keep_old(path: Path) -> Path | None:
-    """A second name for the file now at ``path`` (a hard link beside it), so a
-    failed publication can put it back; None if there is no file there."""
+    """A second name for the file now at ``path`` (a hard link beside it, or a
+    copy where the file system has no hard links), so a failed publication can
+    put it back; None if there is no file there."""
     if not os.path.lexists(path):
         return None
     for _ in range(100):
@@ -127,9 +128,24 @@ def _keep_old(path: Path) -> Path | None:
             return backup
         except FileExistsError:
             continue
-        except OSError as exc:
-            raise OutputError(f"cannot replace {path}: {_why(exc)}") from None
+        except OSError:
+            return _copy_old(path)
     raise OutputError(f"cannot replace {path}: no free temporary name in its folder")
+
+
+def _copy_old(path: Path) -> Path:
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0))
+        with os.fdopen(fd, "rb") as fh:
+            st = os.fstat(fh.fileno())
+            if not stat.S_ISREG(st.st_mode):
+                raise OutputError(f"refusing to write {path}: it exists and is not a regular file")
+            blob = fh.read()
+    except OSError as exc:
+        raise OutputError(f"cannot replace {path}: {_why(exc)}") from None
+    backup = _stage(path, blob)
+    os.chmod(backup, stat.S_IMODE(st.st_mode))
+    return backup
 
 
 def _stage(path: Path, blob: bytes) -> Path:

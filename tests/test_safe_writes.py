@@ -129,6 +129,24 @@ def test_failed_second_rename_puts_everything_back(tmp_path, monkeypatch):
     assert _leftovers(tmp_path) == []
 
 
+def test_rollback_without_hard_links_restores_a_copy(tmp_path, monkeypatch):
+    """Where the file system refuses hard links, the old files are kept as copies."""
+    _old_pair(tmp_path)
+    os.chmod(tmp_path / "m.c", 0o640)
+
+    def no_links(*args, **kwargs):
+        raise OSError(1, "Operation not permitted")
+
+    monkeypatch.setattr(safe_io.os, "link", no_links)
+    _fail_second(monkeypatch, "replace", OSError(28, "No space left on device"))
+    with pytest.raises(OutputError, match="No space left on device"):
+        write_files({tmp_path / "m.c": "new c", tmp_path / "m.h": "new h"})
+    monkeypatch.undo()
+    assert (tmp_path / "m.c").read_text() == "old c" and (tmp_path / "m.h").read_text() == "old h"
+    assert stat.S_IMODE((tmp_path / "m.c").stat().st_mode) == 0o640
+    assert _leftovers(tmp_path) == []
+
+
 def test_interrupt_during_publication_rolls_back_and_propagates(tmp_path, monkeypatch):
     _old_pair(tmp_path)
     _fail_second(monkeypatch, "replace", KeyboardInterrupt())
