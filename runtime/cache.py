@@ -191,7 +191,8 @@ _checked: dict[str, tuple] = {}  # configured root → (identity of the root fol
 
 
 def _identity(st: os.stat_result) -> tuple:
-    return st.st_dev, st.st_ino, st.st_uid, st.st_mode
+    # st_nlink counts the root's subfolders: one of ours removed means a full check again
+    return st.st_dev, st.st_ino, st.st_uid, st.st_mode, st.st_nlink
 
 
 def _ensure_root(create: bool) -> tuple[Path, bytes] | None:
@@ -199,9 +200,8 @@ def _ensure_root(create: bool) -> tuple[Path, bytes] | None:
     asked; None if there is no cache and ``create`` is false.
 
     For fetches (``create``) the full check runs once per process and root;
-    later ones only confirm
-    with one ``lstat`` that the root is the same folder with the same owner
-    and mode (what passed the check — folders above it owned by this user or
+    later ones only confirm with one ``lstat`` that the root is the same
+    folder with the same owner, mode and subfolder count (what passed the check — folders above it owned by this user or
     root and closed to others, a key only this user can read — can change
     only at the hands of this user or root)."""
     if not create:  # info and clear: always the full check
@@ -245,7 +245,7 @@ def _check_root(create: bool) -> tuple[Path, bytes] | None:
             if foreign:
                 raise CacheError(f"{top} holds files that are not treeflux's ({foreign[0]!r}); "
                                  f"set TREEFLUX_CACHE_DIR to an empty or new folder")
-            _create_file(top, MARKER, MARKER_TEXT.encode(), 0o644 & ~_umask())
+            _create_file(top, MARKER, MARKER_TEXT.encode(), 0o644)
         marker = _read_own(top / MARKER).decode(errors="replace")
         if marker != MARKER_TEXT:
             raise CacheError(f"{top / MARKER} is not a treeflux cache marker of format {FORMAT}; "
@@ -274,12 +274,6 @@ def _own_folder(path: Path) -> None:
     why = "not a folder" if not stat.S_ISDIR(st.st_mode) else _unsafe(st)
     if why:
         raise CacheError(f"cache folder {path} is {why}")
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
 
 
 def _mac(secret: bytes, key: str, files: dict) -> str:
@@ -346,7 +340,7 @@ def _seal(work: Path, key: str, secret: bytes) -> None:
     manifest = {"treeflux": "cache-entry", "format": FORMAT, "key": key, "files": files,
                 "mac": _mac(secret, key, files)}
     fd = os.open(work / MANIFEST, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0),
-                 0o644 & ~_umask() & ~0o022)
+                 0o644)
     with os.fdopen(fd, "w") as fh:
         fh.write(json.dumps(manifest, sort_keys=True))
 
