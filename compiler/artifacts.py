@@ -6,8 +6,11 @@ profile, as JSON, under a key that hashes the canonical scheme, the method,
 the options, the treeflux version, the back end and the host CPU
 (:func:`treeflux.runtime.cache.make_key` adds the host). A hit skips the
 front end, the passes and code generation; native back ends then find their
-binaries in the cache too. Nothing from the cache is unpickled or executed
-other than source that treeflux itself generated and hashed.
+binaries in the cache too. Nothing from the cache is unpickled, and nothing
+is read or executed before :func:`treeflux.runtime.cache.lookup` has verified
+the entry: owned by this user, not writable by others, and sealed with this
+user's secret key (an HMAC over the files' hashes), so an entry edited on
+disk or planted by someone else is moved aside and rebuilt, never run.
 """
 
 from __future__ import annotations
@@ -47,8 +50,8 @@ def store(key: str, kernel, info: ModelInfo, profile: dict) -> None:
 
 def load(key: str):
     """(kernel, info, profile) from the cache, or None if absent."""
-    entry = cache.root() / key
-    if not cache.is_valid(entry):
+    entry = cache.lookup(key)
+    if entry is None:
         return None
     try:
         record = json.loads((entry / FILE).read_text())

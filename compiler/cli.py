@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 from pathlib import Path
 
@@ -133,7 +134,11 @@ def cmd_formula(args) -> int:
 
 
 def cmd_compile(args) -> int:
+    from treeflux.runtime.safe_io import OutputError
     from .pipeline import emit
+    out = Path(args.out)
+    if os.path.lexists(out) and not out.is_dir():
+        raise OutputError(f"cannot write into {out}: it exists and is not a folder")
     scheme = load_model(args.model)
     written = emit(scheme, args.target, args.out, method=args.method)
     for p in written:
@@ -145,8 +150,14 @@ def cmd_cache(args) -> int:
     from treeflux.runtime import cache
     if args.action == "info":
         emit_json(cache.info())
-    else:
-        print(f"removed {cache.clear()} entries from {cache.root()}")
+        return 0
+    counts = cache.clear()
+    line = f"removed {counts['removed']} entries from {cache.root()}"
+    if counts["in_use"]:
+        line += f"; kept {counts['in_use']} in use by running processes"
+    if counts["kept"]:
+        line += f"; left {counts['kept']} items alone that are not provably treeflux's (see cache info)"
+    print(line)
     return 0
 
 

@@ -61,6 +61,24 @@ def parse_range(text: str) -> tuple[float, float]:
     return lo, hi
 
 
+def _check_outputs(args) -> None:
+    """Refuse a bad ``--plot`` (format or target) or ``--out`` target before any
+    computation: only .png, .svg and .pdf are drawn (safe_io.PLOT_SUFFIXES)."""
+    from treeflux.runtime.safe_io import check_plot_target, check_target
+    if getattr(args, "plot", None):
+        check_plot_target(args.plot)
+    if getattr(args, "out", None):
+        check_target(args.out)
+
+
+def _savefig(fig, path) -> None:
+    """Write a figure through safe_io (temporary in a private folder, renamed into place)."""
+    from pathlib import Path
+    from treeflux.runtime.safe_io import output_path
+    with output_path(path) as tmp:
+        fig.savefig(tmp, dpi=120, format=Path(path).suffix[1:].lower())
+
+
 def _pyplot():
     """matplotlib's pyplot on a file-only backend, or a clear error."""
     try:
@@ -81,6 +99,7 @@ def _g(v) -> str:
 
 def cmd_response(args) -> int:
     from treeflux.runtime.analysis import response_curve
+    _check_outputs(args)
     lo, hi = parse_range(args.range)
     plt = _pyplot() if args.plot else None
     values = _values(args)
@@ -101,7 +120,7 @@ def cmd_response(args) -> int:
         ax.set_ylabel("normalized response (model prediction)")
         ax.legend()
         fig.tight_layout()
-        fig.savefig(args.plot, dpi=120)
+        _savefig(fig, args.plot)
         plt.close(fig)
         r["plot"] = str(args.plot)
     if args.json:
@@ -217,6 +236,7 @@ def cmd_passage(args) -> int:
 def cmd_sample(args) -> int:
     import numpy as np
     from treeflux.runtime.analysis import sample, write_table
+    _check_outputs(args)
     spec = [args.observable, args.input, args.range]
     if any(v is not None for v in spec) and not all(v is not None for v in spec):
         raise EvaluationError("--observable, --input and --range go together: give all three or none")
@@ -277,7 +297,7 @@ def _plot_samples(plt, r, path):
         ax.set_ylabel("samples")
         ax.legend(fontsize="small")
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    _savefig(fig, path)
     plt.close(fig)
 
 

@@ -397,13 +397,11 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
                            for st in scheme.states]},
               "note": "outputs are model predictions of the scheme, not measurements"}
     files[f"{name}.layout.json"] = json.dumps(layout, indent=2, sort_keys=True) + "\n"
+    from treeflux.runtime.safe_io import write_files
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    written = []
-    for fname, text in sorted(files.items()):
-        path = out / fname
-        tmp = path.with_name(path.name + ".tmp")
-        tmp.write_text(text)
-        tmp.replace(path)
-        written.append(path)
-    return written
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        from treeflux.runtime.safe_io import OutputError
+        raise OutputError(f"cannot write into {out}: {exc.strerror or exc}") from None
+    return write_files({out / fname: files[fname] for fname in sorted(files)})  # all or nothing

@@ -20,9 +20,7 @@ that recompiles the model file) is sent instead.
 from __future__ import annotations
 
 import math
-import os
 import pickle
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -233,26 +231,18 @@ def _dask_map(model, rebuild, task, pieces, address):
 # ------------------------------------------------------------------ output
 
 def write_table(result: dict, path) -> Path:
-    """Write a :func:`sample` result atomically (temporary file, then rename).
+    """Write a :func:`sample` result atomically through :mod:`treeflux.runtime.safe_io`
+    (exclusive temporary in the target folder, then rename; never through a link).
 
     ``.npz`` writes arrays ``data`` and ``columns``; anything else is CSV
     with a header row and 17 significant digits (round-trips float64).
     """
-    path = Path(path)
-    directory = path.parent if str(path.parent) else Path(".")
-    if not directory.is_dir():
-        raise EvaluationError(f"cannot write {path}: directory {directory} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=directory)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            if path.suffix == ".npz":
-                np.savez(fh, data=result["data"], columns=np.array(result["columns"]))
-            else:
-                header = ",".join(result["columns"])
-                np.savetxt(fh, result["data"], delimiter=",", header=header, comments="", fmt="%.17g")
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
+    import io
+    from .safe_io import write_file
+    fh = io.BytesIO()
+    if Path(path).suffix == ".npz":
+        np.savez(fh, data=result["data"], columns=np.array(result["columns"]))
+    else:
+        header = ",".join(result["columns"])
+        np.savetxt(fh, result["data"], delimiter=",", header=header, comments="", fmt="%.17g")
+    return write_file(path, fh.getvalue())
