@@ -261,6 +261,8 @@ def _golden_max(fun, rows, a, b, *, iterations=60):
 
 def _last_valid(F: np.ndarray) -> np.ndarray:
     """Per row, the number of leading finite entries of F."""
+    if F.shape[1] == 0:
+        return np.zeros(F.shape[0], dtype=int)
     bad = ~np.isfinite(F)
     return np.where(bad.any(axis=1), np.argmax(bad, axis=1), F.shape[1])
 
@@ -269,13 +271,13 @@ def _tail_limit(F: np.ndarray, ftol: np.ndarray):
     """Farthest value of each tail (N, m) and whether its last three values
     agree to ``ftol`` (the limit is then established)."""
     N = F.shape[0]
+    if F.shape[1] < 3:
+        return np.full(N, np.nan), np.zeros(N, dtype=bool)
     n = _last_valid(F)
     r = np.arange(N)
     ok = n >= 3
     k = np.maximum(n, 3)
-    last = np.where(n >= 1, F[r, np.maximum(n - 1, 0)], np.nan) if F.shape[1] else np.full(N, np.nan)
-    if F.shape[1] < 3:
-        return last, np.zeros(N, dtype=bool)
+    last = np.where(n >= 1, F[r, np.maximum(n - 1, 0)], np.nan)
     d1 = np.abs(F[r, k - 1] - F[r, k - 2])
     d2 = np.abs(F[r, k - 2] - F[r, k - 3])
     return last, ok & (d1 <= ftol) & (d2 <= ftol)
@@ -695,16 +697,13 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
     for key in ("ec10", "ec50", "ec90", "hill_effective", "max_slope", "max_slope_at",
                 "max_log_slope", "max_log_slope_at"):
         result[key] = _num(one[key])
-    fit_ok = result["ec50"] is not None
     result["hill_fit"] = None
-    if fit_ok and not signed:
-        pos = x > 0
-        result["hill_fit"] = hill_fit(x[pos], yn[pos], n0=float(one["hill_effective"]), K0=float(one["ec50"]))
-    if fit_ok and signed:
-        width = (one["ec90"] - one["ec10"]) / (2.0 * math.log(9.0)) if np.isfinite(one["ec90"] - one["ec10"]) else math.nan
-        result["logistic_fit"] = logistic_fit(x, yn, x0=float(one["ec50"]), s0=width)
+    if result["ec50"] is not None:
+        fit = _reference_fit(model, base, input, observable, one, x, yn, signed, by_limits)
+        result["logistic_fit" if signed else "hill_fit"] = fit
     if not monotone:
         result["peak"] = {"x": _num(one["peak_x"]), "y": _num(one["peak_y"]),
+                          "y_normalized": _num((one["peak_y"] - one["low"]) / one["span"]),
                           "kind": "maximum" if one["peak_kind"] > 0 else "minimum",
                           "in_range": bool(lo <= one["peak_x"] <= hi)}
         result["half_points"] = {"rising": _num(one["half_rising"]), "falling": _num(one["half_falling"])}
@@ -715,6 +714,35 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
     result["note"] = (NOTE + "; normalized to " + ("the observable's limits at the ends of the "
                       "input's domain" if by_limits else "its extremes over the range"))
     return result
+
+
+def _reference_fit(model, base, input, observable, one, x, yn, signed, by_limits) -> dict:
+    """Hill (or, for a signed input, logistic) fit to ŷ. Normalized to its
+    limits, the curve is fitted on a grid spanning the range and the EC10–EC90
+    band widened by its own width on each side, so a range that cuts the
+    curve does not bend the reference; normalized to the range, on the grid."""
+    ec10, ec50, ec90 = (float(one[k]) for k in ("ec10", "ec50", "ec90"))
+    if by_limits and np.isfinite(ec10) and np.isfinite(ec90):
+        a, b = sorted((ec10, ec90))
+        if signed:
+            lo, hi = min(x[0], a - (b - a)), max(x[-1], b + (b - a))
+            xf = np.linspace(lo, hi, len(x))
+        else:
+            xf = np.geomspace(min(x[x > 0][0], a * a / b), max(x[-1], b * b / a), len(x))
+        axis = Axis("linear" if signed else "log", xf[0], xf[-1], "signed" if signed else "positive")
+        curves = _Curves(model, base, _input_column(model, input), observable, axis)
+        curves.low, curves.span = np.array([one["low"]]), np.array([one["span"]])
+        yf = curves.norm(np.zeros(len(xf), dtype=int), axis.to_u(xf))
+    else:
+        xf, yf = x, yn
+    if signed:
+        fit = logistic_fit(xf, yf, x0=ec50, s0=(ec90 - ec10) / (2.0 * math.log(9.0)))
+    else:
+        pos = xf > 0
+        fit = hill_fit(xf[pos], yf[pos], n0=float(one["hill_effective"]), K0=ec50)
+        xf = xf[pos]
+    fit["window"] = [float(xf[0]), float(xf[-1])]
+    return fit
 
 
 def _limits_report(one: dict, domain: str) -> dict:
