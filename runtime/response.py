@@ -417,8 +417,10 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
     out = {"peak_x": np.full(N, np.nan), "peak_y": np.full(N, np.nan),
            "half_rising": np.full(N, np.nan), "half_falling": np.full(N, np.nan),
            "peak_kind": np.zeros(N, dtype=int), "extrema": np.zeros(N, dtype=int)}
-    for r in np.flatnonzero(~monotone & ~flat):
-        _peak(curves, r, seq_u, F[r], L_lo[r], L_hi[r], mtol[r], out)
+    bell = np.flatnonzero(~monotone & ~flat)
+    if len(bell):
+        _peaks(curves, bell, seq_u, F, L_lo, L_hi, out)
+        out["extrema"][bell] = [_extremum_count(F[r], mtol[r]) for r in bell]
     # ------------------------------------------------ normalization
     use_mono = np.where(by_limits, monotone, monotone_in_range)
     with np.errstate(invalid="ignore"):
@@ -468,54 +470,73 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
     return out
 
 
-def _peak(curves: _Curves, r: int, seq_u, Fr, Llo, Lhi, tol, out) -> None:
-    """Peak (or trough) of row r and its half-points; written into ``out``."""
-    valid = np.flatnonzero(np.isfinite(Fr))
-    first, last = Fr[valid[0]], Fr[valid[-1]]
-    left = Llo if np.isfinite(Llo) else first
-    right = Lhi if np.isfinite(Lhi) else last
-    up = np.nanmax(Fr) - max(left, right)
-    down = min(left, right) - np.nanmin(Fr)
-    kind = 1 if up >= down else -1
-    k = int(np.nanargmax(kind * Fr))
-    a, b = seq_u[valid[max(np.searchsorted(valid, k) - 1, 0)]], seq_u[valid[min(np.searchsorted(valid, k) + 1, len(valid) - 1)]]
-    rows = np.array([r])
+def _peaks(curves: _Curves, rows: np.ndarray, seq_u, F, L_lo, L_hi, out) -> None:
+    """Peak (or trough) of each row in ``rows`` and its half-points, written
+    into ``out``. The extremum is the one lying beyond both limits (farther
+    out of the two); its half-points are where f is halfway between it and
+    the limit on each side (the crossing nearest the peak)."""
+    N = len(F)
+    Fr = F[rows]
+    fin = np.isfinite(Fr)
+    i = np.arange(len(rows))
+    first = Fr[i, np.argmax(fin, axis=1)]
+    last = Fr[i, Fr.shape[1] - 1 - np.argmax(fin[:, ::-1], axis=1)]
+    left = np.where(np.isfinite(L_lo[rows]), L_lo[rows], first)
+    right = np.where(np.isfinite(L_hi[rows]), L_hi[rows], last)
+    up = np.nanmax(Fr, axis=1) - np.maximum(left, right)
+    down = np.minimum(left, right) - np.nanmin(Fr, axis=1)
+    kind = np.zeros(N)
+    kind[rows] = np.where(up >= down, 1.0, -1.0)
+    k = np.nanargmax(kind[rows, None] * Fr, axis=1)
+    ka = np.where(fin[i, np.maximum(k - 1, 0)], np.maximum(k - 1, 0), k)
+    kb = np.where(fin[i, np.minimum(k + 1, Fr.shape[1] - 1)], np.minimum(k + 1, Fr.shape[1] - 1), k)
+    a, b = seq_u[ka], seq_u[kb]
 
     def signed(rr, uu):
         with np.errstate(all="ignore"):
-            v = kind * curves.safe_raw(rr, curves.axis.to_x(uu))
+            v = kind[rr] * curves.safe_raw(rr, curves.axis.to_x(uu))
         return np.where(np.isfinite(v), v, -np.inf)
 
-    u_best, v_best = _golden_max(signed, rows, np.array([a]), np.array([b]))
+    u_best, v_best = _golden_max(signed, rows, a, b)
     # golden section places a smooth extremum to about sqrt(eps); a root of the
     # central-difference derivative (Illinois) places it to about eps^(2/3)
     h = curves.step(u_best)
+    h_full = np.zeros(N)
+    h_full[rows] = h
 
     def slope(rr, uu):
-        return (signed(rr, uu + h) - signed(rr, uu - h)) / (2.0 * h)
+        return (signed(rr, uu + h_full[rr]) - signed(rr, uu - h_full[rr])) / (2.0 * h_full[rr])
 
-    ga, gb = slope(rows, np.array([a])), slope(rows, np.array([b]))
-    if ga[0] > 0 > gb[0]:
-        u_best = _illinois(slope, rows, [a], [b], ga, gb)
-        v_best = signed(rows, u_best)
-    out["peak_x"][r] = float(curves.axis.to_x(u_best)[0])
-    out["peak_y"][r] = peak = float(kind * v_best[0])
-    out["peak_kind"][r] = kind
-    out["extrema"][r] = _extremum_count(Fr, tol)
-    for key, base, sl in (("rising" if kind > 0 else "falling", left, slice(None, k + 1)),
-                          ("falling" if kind > 0 else "rising", right, slice(k, None))):
-        target = 0.5 * (base + peak)
-        H = (Fr - target)[sl]
-        idx = np.arange(len(Fr))[sl]
+    ga, gb = slope(rows, a), slope(rows, b)
+    sel = (ga > 0) & (gb < 0)
+    if sel.any():
+        u_best[sel] = _illinois(slope, rows[sel], a[sel], b[sel], ga[sel], gb[sel])
+        v_best[sel] = signed(rows[sel], u_best[sel])
+    peak = kind[rows] * v_best
+    out["peak_x"][rows] = curves.axis.to_x(u_best)
+    out["peak_y"][rows] = peak
+    out["peak_kind"][rows] = kind[rows].astype(int)
+    # half-points: the last crossing before the peak, the first after it
+    target = np.zeros(N)
+    cols = np.arange(Fr.shape[1] - 1)
+    for base, before in ((left, True), (right, False)):
+        t = 0.5 * (base + peak)
+        H = Fr - t[:, None]
         with np.errstate(invalid="ignore"):
-            cross = np.flatnonzero(H[:-1] * H[1:] <= 0)
-        if not len(cross):
+            cross = (H[:, :-1] * H[:, 1:] <= 0) & ((cols[None, :] < k[:, None]) if before
+                                                   else (cols[None, :] >= k[:, None]))
+        has = cross.any(axis=1)
+        j = (cross.shape[1] - 1 - np.argmax(cross[:, ::-1], axis=1)) if before else np.argmax(cross, axis=1)
+        if not has.any():
             continue
-        j = int(cross[-1] if sl.start is None else cross[0])      # the crossing nearest the peak
-        i0, i1 = idx[j], idx[j + 1]
-        u = _illinois(lambda rr, uu, t=target: curves.raw(rr, curves.axis.to_x(uu)) - t, rows,
-                      [seq_u[i0]], [seq_u[i1]], [Fr[i0] - target], [Fr[i1] - target])
-        out["half_" + key][r] = float(curves.axis.to_x(u)[0])
+        sub, j = np.flatnonzero(has), j[has]
+        target[rows[sub]] = t[sub]
+        u = _illinois(lambda rr, uu: curves.raw(rr, curves.axis.to_x(uu)) - target[rr], rows[sub],
+                      seq_u[j], seq_u[j + 1], H[sub, j], H[sub, j + 1])
+        rising = (kind[rows[sub]] > 0) == before
+        x = curves.axis.to_x(u)
+        out["half_rising"][rows[sub[rising]]] = x[rising]
+        out["half_falling"][rows[sub[~rising]]] = x[~rising]
 
 
 def _slopes(curves: _Curves, axis: Axis, grid, u_grid, Yn, ok_mask, out) -> None:
@@ -605,7 +626,7 @@ def logistic_fit(x: np.ndarray, y: np.ndarray, *, x0: float, s0: float) -> dict:
     voltage-gated response). Returns ``x_half``, ``slope_factor`` (s), ``rms``."""
     n0 = 1.0 / s0 if np.isfinite(s0) and s0 != 0 else math.nan
     n, m, rms = _logistic_fit(x, y, n0=n0, m0=x0)
-    return {"x_half": m, "slope_factor": 1.0 / n, "rms": rms}
+    return {"x_half": m, "slope_factor": 1.0 / n if n else math.inf, "rms": rms}
 
 
 # ------------------------------------------------------------------ one curve
