@@ -371,8 +371,7 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
     domain = input_domain(model, input)
     check_in_domain(lo, hi, input, domain)
     axis = Axis(spacing, lo, hi, domain)
-    base = model.as_array(base) if len(np.shape(base)) != 2 or np.shape(base)[1] != len(model.symbols) \
-        else np.ascontiguousarray(base, dtype=float)
+    base = model.as_array(base)
     N = base.shape[0]
     curves = _Curves(model, base, col, observable, axis)
     grid = axis.grid(points)
