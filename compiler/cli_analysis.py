@@ -109,7 +109,8 @@ def _print_response(r) -> None:
           f"({r['direction']}, {r['spacing']} grid; model predictions), normalized to {norm}:")
     for side in ("lower", "upper"):
         lim = r["limits"][side]
-        print(f"  limit at {lim['at']:<5}    {_g(lim['value'])}  ({lim['how']})")
+        where = "" if lim["evaluated_at"] is None else f"; value at {r['input']} = {lim['evaluated_at']:.3g}"
+        print(f"  limit at {lim['at']:<5}    {_g(lim['value'])}  ({lim['how']}{where})")
     if r["monotone"] or r["ec50"] is not None:
         keys = ["ec10", "ec50", "ec90"] + (["hill_effective"] if r["domain"] != "signed" else [])
     else:
@@ -129,8 +130,8 @@ def _print_response(r) -> None:
         f = r["logistic_fit"]
         print(f"  logistic_fit      x_half = {f['x_half']:.6g}, slope_factor = {f['slope_factor']:.6g} "
               f"(rms {f['rms']:.2g})")
-    print(f"  saturated         {'yes' if r['saturated'] else 'no'} "
-          f"(within {100 * r['saturation_tolerance']:g}% of the span from both limits)")
+    print(f"  saturated         {'yes' if r['saturated'] else 'no'} (saturated means both ends of "
+          f"the range lie within {100 * r['saturation_tolerance']:g}% of the span from their limits)")
     for w in r["warnings"]:
         print(f"  warning: {w}")
 

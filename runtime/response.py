@@ -149,6 +149,12 @@ class _Curves:
         try:
             with np.errstate(all="ignore"):
                 v = np.array(self.raw(rows, x), dtype=float)
+                X = self.base[rows].copy()
+                X[:, self.col] = x
+                rates = self.model.labels(X)
+            # a rate that overflowed or went negative out here ends the tail
+            # whether or not the evaluation path noticed it
+            v[~(np.isfinite(rates) & (rates >= 0)).all(axis=1)] = np.nan
         except TreefluxError:
             if len(rows) == 1:
                 return np.full(1, np.nan)
@@ -267,20 +273,22 @@ def _last_valid(F: np.ndarray) -> np.ndarray:
     return np.where(bad.any(axis=1), np.argmax(bad, axis=1), F.shape[1])
 
 
-def _tail_limit(F: np.ndarray, ftol: np.ndarray):
-    """Farthest value of each tail (N, m) and whether its last three values
-    agree to ``ftol`` (the limit is then established)."""
+def _tail_limit(F: np.ndarray, x: np.ndarray, ftol: np.ndarray):
+    """Farthest value of each tail (N, m) at points x (m,), where it was
+    taken, and whether the last three values agree to ``ftol`` (the limit is
+    then established)."""
     N = F.shape[0]
     if F.shape[1] < 3:
-        return np.full(N, np.nan), np.zeros(N, dtype=bool)
+        return np.full(N, np.nan), np.full(N, np.nan), np.zeros(N, dtype=bool)
     n = _last_valid(F)
     r = np.arange(N)
     ok = n >= 3
     k = np.maximum(n, 3)
     last = np.where(n >= 1, F[r, np.maximum(n - 1, 0)], np.nan)
+    at = np.where(n >= 1, x[np.maximum(n - 1, 0)], np.nan)
     d1 = np.abs(F[r, k - 1] - F[r, k - 2])
     d2 = np.abs(F[r, k - 2] - F[r, k - 3])
-    return last, ok & (d1 <= ftol) & (d2 <= ftol)
+    return last, at, ok & (d1 <= ftol) & (d2 <= ftol)
 
 
 def _ffill(S: np.ndarray) -> np.ndarray:
@@ -393,16 +401,13 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
         big = np.nanmax(np.abs(F), axis=1)
         spread = np.nanmax(F, axis=1) - np.nanmin(F, axis=1)
     ftol = np.maximum(LIMIT_TOLERANCE * spread, 16 * _EPS * big)
-    L_lo, ok_lo = _tail_limit(TL, ftol)
-    L_hi, ok_hi = _tail_limit(TU, ftol)
+    L_lo, at_lo, ok_lo = _tail_limit(TL, lower_x, ftol)
+    L_hi, at_hi, ok_hi = _tail_limit(TU, upper_x, ftol)
     if axis.lower_exact:                                   # x = 0 itself: edges absent
-        if lo <= 0:
-            L_lo, ok_lo = Y[:, 0].copy(), np.ones(N, dtype=bool)
-        else:
-            f0 = curves.safe_raw(np.arange(N), np.zeros(N))
-            ok0 = np.isfinite(f0)
-            L_lo = np.where(ok0, f0, L_lo)
-            ok_lo = ok0 | ok_lo
+        f0 = Y[:, 0].copy() if lo <= 0 else curves.safe_raw(np.arange(N), np.zeros(N))
+        ok0 = np.isfinite(f0)
+        L_lo, at_lo = np.where(ok0, f0, L_lo), np.where(ok0, 0.0, at_lo)
+        ok_lo = ok0 | ok_lo
     L_lo = np.where(ok_lo, L_lo, np.nan)
     L_hi = np.where(ok_hi, L_hi, np.nan)
     S = np.hstack([L_lo[:, None], F, L_hi[:, None]])
@@ -436,6 +441,7 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
                 "monotone_in_range": monotone_in_range, "direction": direction,
                 "response_min": ymin, "response_max": ymax, "limit_lower": L_lo,
                 "limit_upper": L_hi, "limit_lower_ok": ok_lo, "limit_upper_ok": ok_hi,
+                "limit_lower_at": at_lo, "limit_upper_at": at_hi,
                 "by_limits": by_limits, "low": low, "span": span, "spacing": axis.spacing,
                 "domain": domain, "normalization": normalization})
     # ------------------------------------------------ EC levels: bracket, then solve
@@ -663,7 +669,7 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
         ``input``, ``observable``, ``range``, ``values`` (every symbol but the
         input), ``spacing``, ``domain``, ``normalization`` (what was used),
         ``limits`` (``lower``/``upper``: ``at``, ``value``, ``established``,
-        ``how``), ``curve`` (``x``, ``y``, ``y_normalized``), ``direction``,
+        ``evaluated_at``, ``how``), ``curve`` (``x``, ``y``, ``y_normalized``), ``direction``,
         ``monotone``, ``monotone_in_range``, ``response_min``,
         ``response_max``, ``ec10``, ``ec50``, ``ec90``, ``hill_effective``
         (ln 81 / ln(ec90/ec10)), ``max_slope``, ``max_slope_at``,
@@ -772,7 +778,7 @@ def _limits_report(one: dict, domain: str) -> dict:
         ok = bool(one[f"limit_{side}_ok"])
         exact = side == "lower" and domain == "non-negative" and ok
         rep[side] = {"at": ends[side], "value": _num(one[f"limit_{side}"]) if ok else None,
-                     "established": ok,
+                     "established": ok, "evaluated_at": _num(one[f"limit_{side}_at"]),
                      "how": ("evaluated at 0 (edges with a zero rate removed)" if exact else
                              "converged far beyond the range" if ok else
                              "not established: the observable did not settle before the model "
