@@ -108,7 +108,8 @@ class Axis:
 
 
 def _offsets(step: float, reach: float, growth: float = 2.0) -> np.ndarray:
-    """step, 2·step, … (dense part), then growing by ``growth``, while below ``reach``."""
+    """step, 2·step, … (dense part), then growing by ``growth``, while below
+    ``reach``; then ``reach`` itself."""
     if reach <= 0:
         return np.zeros(0)
     dense = step * np.arange(1, _DENSE_STEPS + 1)
@@ -117,4 +118,6 @@ def _offsets(step: float, reach: float, growth: float = 2.0) -> np.ndarray:
     while growth * d < reach:
         d *= growth
         out.append(d)
+    if out and out[-1] < reach:
+        out.append(reach)                     # the last point at the edge itself
     return np.array(out)

@@ -287,6 +287,8 @@ def test_voltage_gate_over_a_signed_range_against_mpmath():
     with mpmath.workdps(50):
         v50 = mpmath.findroot(lambda v: p_open(v) - mpmath.mpf(1) / 2, r["ec50"] + 1.0)
     assert r["ec50"] == pytest.approx(float(v50), rel=1e-10)
+    # the upper tail stops before exp(zV/25.7) leaves float64 (exp overflows above 709.78)
+    assert 60.0 < r["limits"]["upper"]["evaluated_at"] <= 709.78 * 25.7 / z
     assert r["max_log_slope"] is None and r["max_log_slope_at"] is None
     assert r["hill_effective"] is None and r["hill_fit"] is None
     assert r["logistic_fit"]["x_half"] == pytest.approx(r["ec50"], rel=0.1)
@@ -308,6 +310,20 @@ def test_two_state_gate_is_an_exact_boltzmann():
     assert r["logistic_fit"]["slope_factor"] == pytest.approx(sf, rel=1e-9)
     assert r["max_slope"] == pytest.approx(1 / (4 * sf), rel=1e-8)
     assert r["max_slope_at"] == pytest.approx(vh, abs=1e-3)
+
+
+def test_a_parameter_swept_as_input_approaches_zero():
+    # v = k1 S/(k1 S + km1 + kcat) as a function of k1: a Hill curve of n = 1 with
+    # K = (km1 + kcat)/S (Briggs–Haldane rearranged); k1 cannot be 0, so its lower
+    # limit is approached, not evaluated.
+    s, _ = michaelis_menten(km1=3.0, kcat=1.0)
+    r = response_curve(compile_scheme(s), observable="v", input="k1", lo=0.1, hi=10.0,
+                       values={"S": 2.0})
+    assert r["domain"] == "positive"
+    assert r["limits"]["lower"]["established"] and r["limits"]["lower"]["evaluated_at"] < 1e-290
+    assert r["limits"]["lower"]["value"] == pytest.approx(0.0, abs=1e-290)
+    assert r["ec50"] == pytest.approx(2.0, rel=1e-10)
+    assert r["hill_effective"] == pytest.approx(1.0, abs=1e-9)
 
 
 def test_signed_ranges_are_refused_for_concentrations():
