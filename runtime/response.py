@@ -13,20 +13,22 @@ fixed), over a range [LO, HI]:
   Other ends are approached on the subtraction-free compiled form, which
   stays accurate at extreme inputs, stepping outwards (half a decade or 1/8
   of the range width at first, then ever larger steps) until the end of
-  float64 (1e±300) or until the model refuses the input (a rate overflows):
+  float64 (1e±300) or until the model refuses the input or a rate
+  overflows or turns negative:
   the limit is the farthest value, and it is *established* only when the
   last three values agree to ``max(1e-12 × span, 16 ε |f|)``. A limit that
   is not established is reported and never assumed: the curve is then
   normalized to the range and a warning says so. A change of the observable
-  narrower than the spacing far out (beyond 12 decades from the range) can be
-  missed; none past 1e±300 is seen;
+  narrower than the spacing far out (beyond 12 decades, or 3 range widths on
+  a linear axis, from the range) can be missed; none past 1e±300 is seen;
 - **normalization** ``"limits"`` (default): ŷ = (f − min L)/|L_hi − L_lo| for
   a monotone curve, so ŷ runs from 0 to 1 over the domain; ``"range"``:
   ŷ = (f − f_min)/(f_max − f_min) over the grid;
 - **monotone** is judged on everything examined (range and tails) with a
   tolerance of ``max(1e-10 × span, 64 ε |f|)`` per step. A curve that is not
   monotone is reported with its ``peak`` (the extremum that lies beyond both
-  limits, refined by golden section) and its rising and falling half-points
+  limits, refined by golden section and then as a root of its derivative)
+  and its rising and falling half-points
   (where f is halfway between the peak and the limit on that side); no EC
   levels, effective Hill coefficient or Hill fit are claimed for it;
 - EC_q (q = 0.1, 0.5, 0.9) is the input where ŷ = q, bracketed on the grid
@@ -36,9 +38,10 @@ fixed), over a range [LO, HI]:
 - slopes dŷ/dx and dŷ/d ln x are central differences of the model in u,
   maximized in magnitude over the range by a golden-section search around
   the steepest grid interval; the log-slope is not defined for a signed input;
-- a least-squares fit of the Hill function x^n/(K^n + x^n) [2]_ to ŷ on the
-  grid gives a reference curve; for a signed input, the logistic
-  (Boltzmann) 1/(1 + exp(−(x − x_half)/s)) instead;
+- a least-squares fit of the Hill function x^n/(K^n + x^n) [2]_ to ŷ gives a
+  reference curve (on the range widened to cover EC10–EC90 and their width
+  again on each side, so a cut range does not bend it); for a signed input,
+  the logistic (Boltzmann) 1/(1 + exp(−(x − x_half)/s)) instead;
 - ``saturated`` is true only when f at both ends of the range lies within
   ``SATURATION_TOLERANCE`` (1 %) of the span from its established limits.
 
