@@ -103,8 +103,9 @@ def cmd_response(args) -> int:
 
 def _print_response(r) -> None:
     lo, hi = r["range"]
-    norm = ("its limits at the ends of the input's domain" if r["normalization"] == "limits"
-            else "its extremes over the range")
+    norm = ("its extremes over the range" if r["normalization"] == "range" else
+            "its limits at the ends of the input's domain" if r["monotone"] else
+            "its limits and its peak")
     print(f"response of {r['observable']} to {r['input']} over [{lo:g}, {hi:g}] "
           f"({r['direction']}, {r['spacing']} grid; model predictions), normalized to {norm}:")
     for side in ("lower", "upper"):
@@ -169,7 +170,8 @@ def _plot_response(plt, r, path) -> None:
             ax.axvline(h, color="C3", lw=0.6, ls=":", label="half-points" if i == 0 else None)
     ax.set_xlabel(f"{r['input']} ({r['spacing']} scale)")
     ax.set_ylabel(f"{r['observable']}, normalized to its "
-                  + ("limits" if r["normalization"] == "limits" else "range"))
+                  + ("range" if r["normalization"] == "range" else
+                     "limits" if r["monotone"] else "limits and peak"))
     ax.set_title(f"Model prediction: response of {r['observable']} to {r['input']}", fontsize=10)
     ax.legend(fontsize="small")
     fig.tight_layout()

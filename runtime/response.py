@@ -612,8 +612,10 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
     result["saturation_tolerance"] = SATURATION_TOLERANCE
     result["unreached"] = {"lower": _num(one["unreached_lower"]), "upper": _num(one["unreached_upper"])}
     result["warnings"] = _warnings(result, one, normalization)
-    result["note"] = (NOTE + "; normalized to " + ("the observable's limits at the ends of the "
-                      "input's domain" if by_limits else "its extremes over the range"))
+    result["note"] = (NOTE + "; normalized to " + (
+        "its extremes over the range" if not by_limits else
+        "the observable's limits at the ends of the input's domain" if monotone else
+        "the observable's extremes over the domain (its limits and its peak)"))
     return result
 
 
