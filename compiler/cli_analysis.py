@@ -12,6 +12,7 @@ plots.
 from __future__ import annotations
 
 import math
+import re
 import sys
 from functools import partial
 
@@ -47,17 +48,19 @@ def _emit(obj) -> None:
     _cli().emit_json(obj)
 
 
-def parse_range(text: str) -> tuple[float, float]:
-    """``"LO:HI"`` → (lo, hi) with 0 < lo < hi, finite; one-line errors."""
+def parse_range(text: str, *, positive: bool = True) -> tuple[float, float]:
+    """``"LO:HI"`` → (lo, hi), finite, LO < HI, and 0 < LO unless ``positive``
+    is False (the input's domain is then checked by the analysis); one-line errors."""
+    need = "0 < LO < HI" if positive else "LO < HI"
     lo_t, sep, hi_t = (text or "").partition(":")
     try:
         if not sep:
             raise ValueError
         lo, hi = float(lo_t), float(hi_t)
     except ValueError:
-        raise EvaluationError(f"bad range {text!r}: expected LO:HI, two numbers with 0 < LO < HI") from None
-    if not (math.isfinite(lo) and math.isfinite(hi) and 0 < lo < hi):
-        raise EvaluationError(f"bad range {text!r}: need 0 < LO < HI, both finite")
+        raise EvaluationError(f"bad range {text!r}: expected LO:HI, two numbers with {need}") from None
+    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi and (lo > 0 or not positive)):
+        raise EvaluationError(f"bad range {text!r}: need {need}, both finite")
     return lo, hi
 
 
@@ -100,42 +103,99 @@ def _g(v) -> str:
 def cmd_response(args) -> int:
     from treeflux.runtime.analysis import response_curve
     _check_outputs(args)
-    lo, hi = parse_range(args.range)
+    lo, hi = parse_range(args.range, positive=False)
     plt = _pyplot() if args.plot else None
     values = _values(args)
     _, model = _compile(args.model, args.method, args.backend)
     r = response_curve(model, observable=args.observable, input=args.input, lo=lo, hi=hi,
-                       points=args.points, values=values)
+                       points=args.points, values=values, normalization=args.normalize,
+                       spacing=args.spacing)
     if plt is not None:
-        import numpy as np
-        fig, ax = plt.subplots(figsize=(6, 4))
-        x = np.array(r["curve"]["x"])
-        ax.semilogx(x, r["curve"]["y_normalized"], label=f"{r['observable']} (normalized)")
-        n, K = r["hill_fit"]["n"], r["hill_fit"]["K"]
-        ax.semilogx(x, 1.0 / (1.0 + (K / x) ** n), "--", label=f"Hill fit n={n:.3g}, K={K:.3g}")
-        for key in ("ec10", "ec50", "ec90"):
-            if r[key] is not None:
-                ax.axvline(r[key], color="grey", lw=0.6)
-        ax.set_xlabel(r["input"])
-        ax.set_ylabel("normalized response (model prediction)")
-        ax.legend()
-        fig.tight_layout()
-        _savefig(fig, args.plot)
-        plt.close(fig)
+        _plot_response(plt, r, args.plot)
         r["plot"] = str(args.plot)
     if args.json:
         _emit(r)
         return 0
-    print(f"response of {r['observable']} to {r['input']} over [{lo:g}, {hi:g}] "
-          f"({r['direction']}; model predictions):")
-    for key in ("ec10", "ec50", "ec90", "hill_effective", "max_slope", "max_slope_at",
-                "max_log_slope", "max_log_slope_at"):
-        print(f"  {key:<17} {_g(r[key])}")
-    print(f"  hill_fit          n = {r['hill_fit']['n']:.6g}, K = {r['hill_fit']['K']:.6g} "
-          f"(rms {r['hill_fit']['rms']:.2g})")
-    if not r["monotone"]:
-        print("  note: not monotone over the range; EC values are first crossings")
+    _print_response(r)
     return 0
+
+
+def _print_response(r) -> None:
+    lo, hi = r["range"]
+    norm = ("its extremes over the range" if r["normalization"] == "range" else
+            "its limits at the ends of the input's domain" if r["monotone"] else
+            "its limits and its peak")
+    print(f"response of {r['observable']} to {r['input']} over [{lo:g}, {hi:g}] "
+          f"({r['direction']}, {r['spacing']} grid; model predictions), normalized to {norm}:")
+    for side in ("lower", "upper"):
+        lim = r["limits"][side]
+        where = "" if lim["evaluated_at"] is None else f"; value at {r['input']} = {lim['evaluated_at']:.3g}"
+        print(f"  limit at {lim['at']:<5}    {_g(lim['value'])}  ({lim['how']}{where})")
+    if r["monotone"] or r["ec50"] is not None:
+        keys = ["ec10", "ec50", "ec90"] + (["hill_effective"] if r["domain"] != "signed" else [])
+    else:
+        p, h = r["peak"], r["half_points"]
+        print(f"  not monotone: {p['kind']} {_g(p['y'])} at {r['input']} = {_g(p['x'])}; "
+              f"half-points rising {_g(h['rising'])}, falling {_g(h['falling'])}")
+        print("  no EC levels, effective Hill coefficient or Hill fit for a curve that is not monotone")
+        keys = []
+    keys += ["max_slope", "max_slope_at"] + (["max_log_slope", "max_log_slope_at"]
+                                             if r["domain"] != "signed" else [])
+    for key in keys:
+        print(f"  {key:<17} {_g(r[key])}")
+    if r["hill_fit"] is not None:
+        print(f"  hill_fit          n = {r['hill_fit']['n']:.6g}, K = {r['hill_fit']['K']:.6g} "
+              f"(rms {r['hill_fit']['rms']:.2g})")
+    if r.get("logistic_fit") is not None:
+        f = r["logistic_fit"]
+        print(f"  logistic_fit      x_half = {f['x_half']:.6g}, slope_factor = {f['slope_factor']:.6g} "
+              f"(rms {f['rms']:.2g})")
+    print(f"  saturated         {'yes' if r['saturated'] else 'no'} (saturated means both ends of "
+          f"the range lie within {100 * r['saturation_tolerance']:g}% of the span from their limits)")
+    for w in r["warnings"]:
+        print(f"  warning: {w}")
+
+
+def _plot_response(plt, r, path) -> None:
+    """The normalized curve, its reference fit, EC lines and the peak."""
+    import numpy as np
+    from treeflux.runtime import safe_io
+    fig, ax = plt.subplots(figsize=(6.4, 4.4))
+    x = np.array(r["curve"]["x"])
+    yn = np.array(r["curve"]["y_normalized"])
+    ax.plot(x, yn, lw=2, label=f"{r['observable']} (model prediction)")
+    if r["spacing"] == "log":
+        ax.set_xscale("log")
+    fine = (np.geomspace(x[0], x[-1], 400) if r["spacing"] == "log"
+            else np.linspace(x[0], x[-1], 400))
+    if r["hill_fit"] is not None:
+        n, K = r["hill_fit"]["n"], r["hill_fit"]["K"]
+        pos = fine[fine > 0]
+        ax.plot(pos, 1.0 / (1.0 + (K / pos) ** n), "--", color="C1",
+                label=f"reference Hill curve n={n:.3g}, K={K:.3g}")
+    if r.get("logistic_fit") is not None:
+        x0, s = r["logistic_fit"]["x_half"], r["logistic_fit"]["slope_factor"]
+        ax.plot(fine, 0.5 * (1.0 + np.tanh(0.5 * (fine - x0) / s)), "--", color="C1",
+                label=f"reference logistic x_half={x0:.3g}, s={s:.3g}")
+    shown = [r[k] for k in ("ec10", "ec50", "ec90") if r[k] is not None and x[0] <= r[k] <= x[-1]]
+    for i, v in enumerate(shown):
+        ax.axvline(v, color="grey", lw=0.6, label="EC10, EC50, EC90" if i == 0 else None)
+    if not r["monotone"] and r["peak"]["x"] is not None and r["peak"]["in_range"]:
+        p = r["peak"]
+        ax.plot([p["x"]], [p["y_normalized"]], "v" if p["kind"] == "maximum" else "^",
+                color="C3", ms=9, label=f"{p['kind']} {p['y']:.3g} at {p['x']:.3g}")
+        halves = [h for h in r["half_points"].values() if h is not None and x[0] <= h <= x[-1]]
+        for i, h in enumerate(halves):
+            ax.axvline(h, color="C3", lw=0.6, ls=":", label="half-points" if i == 0 else None)
+    ax.set_xlabel(f"{r['input']} ({r['spacing']} scale)")
+    ax.set_ylabel(f"{r['observable']}, normalized to its "
+                  + ("range" if r["normalization"] == "range" else
+                     "limits" if r["monotone"] else "limits and peak"))
+    ax.set_title(f"Model prediction: response of {r['observable']} to {r['input']}", fontsize=10)
+    ax.legend(fontsize="small")
+    fig.tight_layout()
+    _savefig(fig, path)
+    plt.close(fig)
 
 
 # ------------------------------------------------------------------ thermo
@@ -349,8 +409,17 @@ def register(subparsers) -> None:
     _common(q)
     q.add_argument("--observable", required=True, help="observable (or state) name")
     q.add_argument("--input", required=True, help="symbol to sweep")
-    q.add_argument("--range", required=True, metavar="LO:HI", help="input range, 0 < LO < HI")
-    q.add_argument("--points", type=_positive_int, default=61, help="log-spaced grid points")
+    q.add_argument("--range", required=True, metavar="LO:HI",
+                   help="input range, LO < HI (a negative LO works too: --range -120:60)")
+    # argparse takes "-120:60" for an option unless it looks like a negative
+    # number to this (private, long-standing) matcher: widen it to LO:HI ranges.
+    q._negative_number_matcher = re.compile(r"^-\d+$|^-\d*\.\d+$|^-\.?\d[\d.eE+-]*:")
+    q.add_argument("--points", type=_positive_int, default=61, help="grid points")
+    q.add_argument("--normalize", default="limits", choices=["limits", "range"],
+                   help="normalize to the limits at the ends of the input's domain (default) "
+                        "or to the extremes over the range")
+    q.add_argument("--spacing", default="auto", choices=["auto", "log", "linear"],
+                   help="grid spacing; auto: log when 0 < LO and the input is not signed")
     q.add_argument("--plot", metavar="FILE.png", help="draw the curve (needs matplotlib)")
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_response)

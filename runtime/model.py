@@ -140,11 +140,14 @@ class CompiledModel:
         if not finite.all():
             r, c = np.argwhere(~finite)[0]
             raise EvaluationError(f"row {r}: symbol {self.symbols[c]!r} is not finite ({arr[r, c]})")
-        bad = arr[:, :n_par] <= 0
+        # a symbol declared with min < 0 may be negative (rates must still be positive)
+        signed = np.array([(self.info.bounds.get(s) or (None,))[0] is not None
+                           and self.info.bounds[s][0] < 0 for s in self.symbols], dtype=bool)
+        bad = (arr[:, :n_par] <= 0) & ~signed[:n_par]
         if bad.any():
             r, c = np.argwhere(bad)[0]
             raise EvaluationError(f"row {r}: parameter {self.symbols[c]!r} must be positive, got {arr[r, c]}")
-        neg = arr[:, n_par:] < 0
+        neg = (arr[:, n_par:] < 0) & ~signed[n_par:]
         if neg.any():
             r, c = np.argwhere(neg)[0]
             raise EvaluationError(f"row {r}: input {self.symbols[n_par + c]!r} must be non-negative, "

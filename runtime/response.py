@@ -1,23 +1,52 @@
 """Response curves: one observable as a function of one input.
 
-For an observable f(c) = Σ_i w_i p_i(c) of one input c (every other symbol
-fixed), over a range [lo, hi] with 0 < lo < hi:
+For an observable f(x) = Σ_i w_i p_i(x) of one input x (every other symbol
+fixed), over a range [LO, HI]:
 
-- the curve is evaluated on a log-spaced grid of the input;
-- it is normalized to [0, 1] over the range: ŷ(c) = (f(c) − f_min)/(f_max − f_min);
-- EC_q (q = 0.1, 0.5, 0.9) is the input where ŷ = q, bracketed on the grid and
-  then solved on the model itself (Illinois regula falsi in ln c);
+- the curve is evaluated on a grid of the input: log-spaced when 0 < LO and
+  the input is not signed, linear otherwise (a range reaching or crossing
+  zero, or a signed input such as a voltage);
+- **limits.** The observable's limits at the ends of the input's *domain* are
+  sought beyond the range (:mod:`.response_domain`): [0, ∞) for a
+  concentration, (−∞, ∞) for a signed input, (0, ∞) for a parameter. A
+  concentration of exactly 0 is evaluated directly (its edges are absent).
+  Other ends are approached on the subtraction-free compiled form, which
+  stays accurate at extreme inputs, stepping outwards (half a decade or 1/8
+  of the range width at first, then ever larger steps) until the end of
+  float64 (1e±300) or until the model refuses the input or a rate
+  overflows or turns negative:
+  the limit is the farthest value, and it is *established* only when the
+  last three values agree to ``max(1e-12 × span, 16 ε |f|)``. A limit that
+  is not established is reported and never assumed: the curve is then
+  normalized to the range and a warning says so. A change of the observable
+  narrower than the spacing far out (beyond 12 decades, or 3 range widths on
+  a linear axis, from the range) can be missed; none past 1e±300 is seen;
+- **normalization** ``"limits"`` (default): ŷ = (f − min L)/|L_hi − L_lo| for
+  a monotone curve, so ŷ runs from 0 to 1 over the domain; ``"range"``:
+  ŷ = (f − f_min)/(f_max − f_min) over the grid;
+- **monotone** is judged on everything examined (range and tails) with a
+  tolerance of ``max(1e-10 × span, 64 ε |f|)`` per step. A curve that is not
+  monotone is reported with its ``peak`` (the extremum that lies beyond both
+  limits, refined by golden section and then as a root of its derivative)
+  and its rising and falling half-points
+  (where f is halfway between the peak and the limit on that side); no EC
+  levels, effective Hill coefficient or Hill fit are claimed for it;
+- EC_q (q = 0.1, 0.5, 0.9) is the input where ŷ = q, bracketed on the grid
+  and tails, then solved on the model (Illinois regula falsi in u = ln x or x);
 - the effective Hill coefficient is n_H = ln 81 / ln(EC90/EC10)
-  (Goldbeter & Koshland [1]_); it is 1 for single-site binding c/(K + c);
-- the slopes dŷ/dc and dŷ/d ln c are central differences of the model in
-  ln c, maximized in magnitude by a golden-section search around the
-  steepest grid interval;
-- a least-squares fit of the Hill function c^n/(K^n + c^n) [2]_ to ŷ on the
-  grid gives a reference curve.
+  (Goldbeter & Koshland [1]_), defined for inputs that are not signed;
+- slopes dŷ/dx and dŷ/d ln x are central differences of the model in u,
+  maximized in magnitude over the range by a golden-section search around
+  the steepest grid interval; the log-slope is not defined for a signed input;
+- a least-squares fit of the Hill function x^n/(K^n + x^n) [2]_ to ŷ gives a
+  reference curve (on the range widened to cover EC10–EC90 and their width
+  again on each side, so a cut range does not bend it); for a signed input,
+  the logistic (Boltzmann) 1/(1 + exp(−(x − x_half)/s)) instead;
+- ``saturated`` is true only when f at both ends of the range lies within
+  ``SATURATION_TOLERANCE`` (1 %) of the span from its established limits.
 
 Signs follow the normalized curve: a decreasing response has EC90 < EC10, a
-negative n_H, negative slopes and a negative fitted n (the Hill function
-with n < 0 is 1 minus the Hill function with |n|), as is common practice
+negative n_H, negative slopes and a negative fitted n, as is common practice
 for inhibition curves. All numbers are predictions of the model, not
 measurements.
 
@@ -36,18 +65,23 @@ import math
 
 import numpy as np
 
-from .errors import EvaluationError
+from .errors import EvaluationError, TreefluxError
+from .response_domain import Axis, check_in_domain, input_domain
+from .response_fit import golden_max, hill_fit, illinois, logistic_fit
 
-__all__ = ["response_curve", "response_summaries", "LEVELS"]
+__all__ = ["response_curve", "response_summaries", "hill_fit", "LEVELS", "NORMALIZATIONS"]
 
 LEVELS = (0.1, 0.5, 0.9)
-# Central-difference step in ln c: (machine epsilon)^(1/3) balances the
+NORMALIZATIONS = ("limits", "range")
+# Central-difference step in u: (machine epsilon)^(1/3) balances the
 # truncation error (∝ h²) against rounding (∝ eps/h); about 1e-10 relative.
 FD_STEP = 6e-6
 # A response whose span over the range is below this fraction of its size is flat.
 FLAT_TOLERANCE = 1e-12
-SATURATION_FRACTION = 0.05  # end log-slope / steepest log-slope above which a curve is cut
-_GOLDEN = (math.sqrt(5.0) - 1.0) / 2.0
+LIMIT_TOLERANCE = 1e-12        # agreement of the last tail values, relative to the span
+MONOTONE_TOLERANCE = 1e-10     # allowed step against the direction, relative to the span
+SATURATION_TOLERANCE = 0.01    # distance from a limit at a range end, relative to the span
+_EPS = np.finfo(float).eps
 
 NOTE = "model predictions of the scheme, not measurements"
 
@@ -78,113 +112,162 @@ def _input_column(model, name: str) -> int:
 
 
 def check_range(lo, hi) -> tuple[float, float]:
-    """Validate an input range: finite numbers with 0 < lo < hi."""
+    """Validate an input range: finite numbers with lo < hi. Whether lo may
+    be zero or negative depends on the input's domain
+    (:func:`.response_domain.check_in_domain`)."""
     try:
         lo, hi = float(lo), float(hi)
     except (TypeError, ValueError):
         raise EvaluationError(f"range bounds must be numbers, got {lo!r} and {hi!r}") from None
-    if not (math.isfinite(lo) and math.isfinite(hi) and 0.0 < lo < hi):
-        raise EvaluationError(f"bad range {lo:g}:{hi:g}: need finite bounds with 0 < LO < HI")
+    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+        raise EvaluationError(f"bad range {lo:g}:{hi:g}: need finite bounds with LO < HI")
     return lo, hi
 
 
 # ------------------------------------------------------------------ batch machinery
 
 class _Curves:
-    """Evaluates ŷ for many base rows at once: row r of ``base`` with the
-    input column replaced by c. ``ymin``/``span`` normalize each row."""
+    """Evaluates f and ŷ for many base rows at once: row r of ``base`` with
+    the input column replaced by x. ``low``/``span`` normalize each row."""
 
-    def __init__(self, model, base: np.ndarray, col: int, weights: np.ndarray):
-        self.model = model
-        self.base = base
-        self.col = col
-        self.weights = weights
-        self.ymin = None
+    def __init__(self, model, base: np.ndarray, col: int, observable: str, axis: Axis):
+        _observable_weights(model, observable)            # validates the name
+        self.model, self.base, self.col, self.axis = model, base, col, axis
+        names = tuple(model.observable_names)
+        self.obs = names.index(observable) if observable in names else None
+        self.state = None if self.obs is not None else model.states.index(observable)
+        self.low = None
         self.span = None
 
-    def raw(self, rows: np.ndarray, c: np.ndarray) -> np.ndarray:
+    def raw(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
         X = self.base[rows].copy()
-        X[:, self.col] = c
-        return self.model.steady_state(X) @ self.weights
+        X[:, self.col] = x
+        if self.obs is not None:
+            return self.model.observables(X)[:, self.obs]
+        return self.model.steady_state(X)[:, self.state]
+
+    def safe_raw(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """Like :meth:`raw`, with NaN where the model refuses a row or
+        returns a non-finite value (rates overflowing far beyond the range)."""
+        try:
+            with np.errstate(all="ignore"):
+                v = np.array(self.raw(rows, x), dtype=float)
+                X = self.base[rows].copy()
+                X[:, self.col] = x
+                rates = self.model.labels(X)
+            # a rate that overflowed or went negative out here ends the tail
+            # whether or not the evaluation path noticed it
+            v[~(np.isfinite(rates) & (rates >= 0)).all(axis=1)] = np.nan
+        except TreefluxError:
+            if len(rows) == 1:
+                return np.full(1, np.nan)
+            h = len(rows) // 2
+            return np.concatenate([self.safe_raw(rows[:h], x[:h]), self.safe_raw(rows[h:], x[h:])])
+        v[~np.isfinite(v)] = np.nan
+        return v
+
+    def tail(self, points: np.ndarray) -> np.ndarray:
+        """f at ``points`` (ordered outwards) for every row, NaN from a row's
+        first refusal on (the domain or float64 ends there for that row)."""
+        N = len(self.base)
+        F = np.full((N, len(points)), np.nan)
+        alive = np.arange(N)
+        for j, x in enumerate(points):
+            if not len(alive):
+                break
+            v = self.safe_raw(alive, np.full(len(alive), x))
+            F[alive, j] = v
+            alive = alive[np.isfinite(v)]
+        return F
 
     def norm(self, rows: np.ndarray, u: np.ndarray) -> np.ndarray:
-        """Normalized response at inputs c = exp(u)."""
-        return (self.raw(rows, np.exp(u)) - self.ymin[rows]) / self.span[rows]
+        """Normalized response at coordinates u."""
+        return (self.raw(rows, self.axis.to_x(u)) - self.low[rows]) / self.span[rows]
 
-    def log_slope(self, rows: np.ndarray, u: np.ndarray) -> np.ndarray:
-        """dŷ/d ln c by a central difference of the model."""
-        h = FD_STEP
-        both = self.norm(np.concatenate([rows, rows]), np.concatenate([u + h, u - h]))
+    def step(self, u: np.ndarray) -> np.ndarray:
+        if self.axis.log:
+            return np.full(np.shape(u), FD_STEP)
+        return np.full(np.shape(u), FD_STEP * (self.axis.hi - self.axis.lo) / 8.0)
+
+    def slope(self, rows: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """dŷ/du by a central difference of the model (second-order one-sided
+        where the central one would leave a domain that ends at x = 0)."""
+        h = self.step(u)
         k = len(rows)
-        return (both[:k] - both[k:]) / (2.0 * h)
+        fwd = np.zeros(k, dtype=bool) if self.axis.log or self.axis.domain == "signed" else u - h < 0
+        both = self.norm(np.concatenate([rows, rows, rows]),
+                         np.concatenate([u + h, np.where(fwd, u + 2 * h, u - h), u]))
+        up, other, mid = both[:k], both[k:2 * k], both[2 * k:]
+        central = (up - other) / (2.0 * h)
+        forward = (4.0 * up - other - 3.0 * mid) / (2.0 * h)
+        return np.where(fwd, forward, central)
 
 
-def _illinois(curves: _Curves, rows, a, b, fa, fb, level, *, tol=1e-13, max_iter=100):
-    """Roots of ŷ(e^u) − level in brackets [a, b] (fa·fb ≤ 0), all rows at once.
+# ------------------------------------------------------------------ limits and shape
 
-    Illinois variant of regula falsi (Dowell & Jarratt, BIT 11 (1971) 168–174):
-    superlinear, keeps the bracket, never leaves it.
-    """
-    a, b, fa, fb = (np.array(v, dtype=float) for v in (a, b, fa, fb))
-    root = np.where(fa == 0, a, np.where(fb == 0, b, np.nan))
-    active = np.isnan(root)
-    side = np.zeros(len(a), dtype=int)
-    for _ in range(max_iter):
-        if not active.any():
-            break
-        idx = np.flatnonzero(active)
-        denom = fb[idx] - fa[idx]
-        safe = np.where(denom != 0, denom, 1.0)
-        u = np.where(denom != 0, (a[idx] * fb[idx] - b[idx] * fa[idx]) / safe, 0.5 * (a[idx] + b[idx]))
-        u = np.clip(u, np.minimum(a[idx], b[idx]), np.maximum(a[idx], b[idx]))
-        fu = curves.norm(rows[idx], u) - level
-        same_a = np.sign(fu) == np.sign(fa[idx])
-        # replace the endpoint on the side of fu; halve the kept one if it is kept twice
-        ia, ib = idx[same_a], idx[~same_a]
-        a[ia], fa[ia] = u[same_a], fu[same_a]
-        fb[ia] = np.where(side[ia] == -1, 0.5 * fb[ia], fb[ia])
-        side[ia] = -1
-        b[ib], fb[ib] = u[~same_a], fu[~same_a]
-        fa[ib] = np.where(side[ib] == 1, 0.5 * fa[ib], fa[ib])
-        side[ib] = 1
-        done = (fu == 0) | (np.abs(b[idx] - a[idx]) <= tol * np.maximum(1.0, np.abs(u)))
-        root[idx[done]] = u[done]
-        active[idx[done]] = False
-    left = np.flatnonzero(active)
-    root[left] = 0.5 * (a[left] + b[left])
-    return root
+def _last_valid(F: np.ndarray) -> np.ndarray:
+    """Per row, the number of leading finite entries of F."""
+    if F.shape[1] == 0:
+        return np.zeros(F.shape[0], dtype=int)
+    bad = ~np.isfinite(F)
+    return np.where(bad.any(axis=1), np.argmax(bad, axis=1), F.shape[1])
 
 
-def _golden_max(fun, rows, a, b, *, iterations=60):
-    """Maximize fun(rows, u) over u in [a, b] for every row (golden section)."""
-    a, b = np.array(a, dtype=float), np.array(b, dtype=float)
-    x1 = b - _GOLDEN * (b - a)
-    x2 = a + _GOLDEN * (b - a)
-    f1, f2 = fun(rows, x1), fun(rows, x2)
-    for _ in range(iterations):
-        left = f1 >= f2           # maximum lies in [a, x2]
-        b = np.where(left, x2, b)
-        a = np.where(left, a, x1)
-        x2n = np.where(left, x1, a + _GOLDEN * (b - a))
-        x1n = np.where(left, b - _GOLDEN * (b - a), x2)
-        f2n = np.where(left, f1, np.nan)
-        f1n = np.where(left, np.nan, f2)
-        x1, x2 = x1n, x2n
-        new = np.where(left, x1, x2)
-        fnew = fun(rows, new)
-        f1 = np.where(left, fnew, f1n)
-        f2 = np.where(left, f2n, fnew)
-    # the endpoints (range boundaries) may hold the maximum of a monotone slope
-    cand = np.stack([a, x1, x2, b])
-    vals = np.stack([fun(rows, a), f1, f2, fun(rows, b)])
-    best = np.argmax(vals, axis=0)
-    k = np.arange(len(rows))
-    return cand[best, k], vals[best, k]
+def _tail_limit(F: np.ndarray, x: np.ndarray, ftol: np.ndarray):
+    """Farthest value of each tail (N, m) at points x (m,), where it was
+    taken, and whether the last three values agree to ``ftol`` (the limit is
+    then established)."""
+    N = F.shape[0]
+    if F.shape[1] < 3:
+        return np.full(N, np.nan), np.full(N, np.nan), np.zeros(N, dtype=bool)
+    n = _last_valid(F)
+    r = np.arange(N)
+    ok = n >= 3
+    k = np.maximum(n, 3)
+    last = np.where(n >= 1, F[r, np.maximum(n - 1, 0)], np.nan)
+    at = np.where(n >= 1, x[np.maximum(n - 1, 0)], np.nan)
+    d1 = np.abs(F[r, k - 1] - F[r, k - 2])
+    d2 = np.abs(F[r, k - 2] - F[r, k - 3])
+    return last, at, ok & (d1 <= ftol) & (d2 <= ftol)
 
+
+def _ffill(S: np.ndarray) -> np.ndarray:
+    """Forward-fill NaNs along rows (leading NaNs stay)."""
+    idx = np.where(np.isfinite(S), np.arange(S.shape[1]), 0)
+    np.maximum.accumulate(idx, axis=1, out=idx)
+    out = S[np.arange(S.shape[0])[:, None], idx]
+    return out
+
+
+def _monotone(S: np.ndarray, tol: np.ndarray) -> np.ndarray:
+    """Rows of S (NaN = not examined) that never step against one direction by more than tol."""
+    with np.errstate(invalid="ignore"):
+        d = np.diff(_ffill(S), axis=1)
+    d = np.nan_to_num(d)
+    return (d >= -tol[:, None]).all(axis=1) | (d <= tol[:, None]).all(axis=1)
+
+
+def _extremum_count(S: np.ndarray, tol: float) -> int:
+    """Number of interior extrema of one row (steps below tol ignored)."""
+    v = S[np.isfinite(S)]
+    d = np.diff(v)
+    s = np.sign(d[np.abs(d) > tol])
+    return int(np.count_nonzero(s[1:] != s[:-1])) if len(s) else 0
+
+
+def _crossing(H: np.ndarray):
+    """First interval j of each row where H changes sign (or touches 0)."""
+    with np.errstate(invalid="ignore"):
+        cross = (H[:, :-1] * H[:, 1:]) <= 0
+    return cross.any(axis=1), np.argmax(cross, axis=1)
+
+
+# ------------------------------------------------------------------ summaries
 
 def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
                        lo: float, hi: float, points: int = 61,
-                       skip_flat: bool = False) -> dict:
+                       skip_flat: bool = False, normalization: str = "limits",
+                       spacing: str = "auto") -> dict:
     """Response-curve summaries for many parameter sets at once.
 
     Parameters
@@ -195,156 +278,235 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
     observable, input : str
         Observable (or state) name; symbol to sweep.
     lo, hi : float
-        Range, 0 < lo < hi.
+        Range, lo < hi, inside the input's domain (see the module docstring).
     points : int
-        Log-spaced grid points (at least 5).
+        Grid points (at least 5).
     skip_flat : bool
         Give NaN for rows whose response is flat instead of refusing.
+    normalization : ``"limits"`` or ``"range"``
+        Normalize to the observable's limits at the ends of the input's
+        domain (rows whose limits cannot be established fall back to the
+        range), or to its extremes over the range.
+    spacing : ``"auto"``, ``"log"`` or ``"linear"``
 
     Returns
     -------
-    dict of (N,) arrays
-        ``ec10``, ``ec50``, ``ec90``, ``hill_effective``, ``max_slope``,
-        ``max_slope_at``, ``max_log_slope``, ``max_log_slope_at``,
-        ``response_min``, ``response_max``, ``monotone`` (bool),
-        ``direction`` (+1, −1, or 0 when the ends are equal) and the grid
-        ``x`` (K,), raw ``y`` and normalized ``y_normalized`` (N, K).
+    dict
+        (N,) arrays ``ec10``, ``ec50``, ``ec90``, ``hill_effective``,
+        ``max_slope``, ``max_slope_at``, ``max_log_slope``,
+        ``max_log_slope_at``, ``response_min``, ``response_max`` (over the
+        grid), ``monotone`` (bool, over everything examined),
+        ``monotone_in_range`` (bool), ``direction`` (+1, −1, 0),
+        ``saturated`` (bool), ``limit_lower``, ``limit_upper`` (NaN when not
+        established), ``limit_lower_ok``, ``limit_upper_ok`` (bool),
+        ``by_limits`` (bool: normalized to the limits), ``low`` and ``span``
+        (ŷ = (f − low)/span), ``unreached_lower``, ``unreached_upper``
+        (distance of f at the range ends from the limits, relative to span),
+        ``peak_x``, ``peak_y``, ``half_rising``, ``half_falling`` (NaN for
+        monotone rows), ``peak_kind`` (+1 maximum, −1 minimum, 0 none),
+        ``extrema`` (count); and the grid ``x`` (K,), raw ``y`` and
+        normalized ``y_normalized`` (N, K), ``spacing`` ("log"/"linear"),
+        ``domain`` and ``normalization`` (as requested).
     """
     lo, hi = check_range(lo, hi)
+    if normalization not in NORMALIZATIONS:
+        raise EvaluationError(f"normalization must be one of {', '.join(NORMALIZATIONS)}, "
+                              f"got {normalization!r}")
     if int(points) != points or points < 5:
         raise EvaluationError(f"points must be an integer of at least 5, got {points!r}")
     points = int(points)
-    weights = _observable_weights(model, observable)
     col = _input_column(model, input)
+    domain = input_domain(model, input)
+    check_in_domain(lo, hi, input, domain)
+    axis = Axis(spacing, lo, hi, domain)
     base = model.as_array(base)
     N = base.shape[0]
-    curves = _Curves(model, base, col, weights)
-    grid = np.geomspace(lo, hi, points)
-    u_grid = np.log(grid)
-    rows_all = np.repeat(np.arange(N), points)
-    Y = curves.raw(rows_all, np.tile(grid, N)).reshape(N, points)
+    curves = _Curves(model, base, col, observable, axis)
+    grid = axis.grid(points)
+    u_grid = axis.to_u(grid)
+    Y = curves.raw(np.repeat(np.arange(N), points), np.tile(grid, N)).reshape(N, points)
     ymin, ymax = Y.min(axis=1), Y.max(axis=1)
-    span = ymax - ymin
-    flat = ~(span > FLAT_TOLERANCE * np.maximum(np.abs(ymin), np.abs(ymax)))
+    flat = ~(ymax - ymin > FLAT_TOLERANCE * np.maximum(np.abs(ymin), np.abs(ymax)))
     if flat.any() and not skip_flat:
         r = int(np.flatnonzero(flat)[0])
         raise EvaluationError(f"observable {observable!r} does not change with {input!r} over "
                               f"[{lo:g}, {hi:g}] (values between {ymin[r]:.17g} and {ymax[r]:.17g}"
                               f"{'' if N == 1 else f', parameter set {r}'}); nothing to normalize")
-    curves.ymin = ymin
-    curves.span = np.where(flat, 1.0, span)
-    Yn = (Y - ymin[:, None]) / curves.span[:, None]
-    d = np.diff(Y, axis=1)
-    tol = 1e-10 * curves.span[:, None]
-    monotone = (d >= -tol).all(axis=1) | (d <= tol).all(axis=1)
-    direction = np.sign(Y[:, -1] - Y[:, 0]).astype(int)
-    ok = np.flatnonzero(~flat)
-    out = {"x": grid, "y": Y, "y_normalized": Yn, "monotone": monotone & ~flat,
-           "direction": np.where(flat, 0, direction),
-           "response_min": ymin, "response_max": ymax}
+    # ------------------------------------------------ tails and limits
+    lower_x, upper_x = axis.tail(-1), axis.tail(+1)
+    TL, TU = curves.tail(lower_x), curves.tail(upper_x)
+    seq_u = np.concatenate([axis.to_u(lower_x[::-1]), u_grid, axis.to_u(upper_x)])
+    F = np.hstack([TL[:, ::-1], Y, TU])                    # ascending in x
+    with np.errstate(invalid="ignore"):
+        big = np.nanmax(np.abs(F), axis=1)
+        spread = np.nanmax(F, axis=1) - np.nanmin(F, axis=1)
+    ftol = np.maximum(LIMIT_TOLERANCE * spread, 16 * _EPS * big)
+    L_lo, at_lo, ok_lo = _tail_limit(TL, lower_x, ftol)
+    L_hi, at_hi, ok_hi = _tail_limit(TU, upper_x, ftol)
+    if axis.lower_exact:                                   # x = 0 itself: edges absent
+        f0 = Y[:, 0].copy() if lo <= 0 else curves.safe_raw(np.arange(N), np.zeros(N))
+        ok0 = np.isfinite(f0)
+        L_lo, at_lo = np.where(ok0, f0, L_lo), np.where(ok0, 0.0, at_lo)
+        ok_lo = ok0 | ok_lo
+    L_lo = np.where(ok_lo, L_lo, np.nan)
+    L_hi = np.where(ok_hi, L_hi, np.nan)
+    S = np.hstack([L_lo[:, None], F, L_hi[:, None]])
+    with np.errstate(invalid="ignore"):
+        smax, smin = np.nanmax(S, axis=1), np.nanmin(S, axis=1)
+    mtol = np.maximum(MONOTONE_TOLERANCE * (smax - smin), 64 * _EPS * big)
+    monotone = _monotone(S, mtol) & ~flat
+    monotone_in_range = _monotone(Y, mtol) & ~flat
+    by_limits = (ok_lo & ok_hi) if normalization == "limits" else np.zeros(N, dtype=bool)
+    # ------------------------------------------------ extrema of curves that are not monotone
+    out = {"peak_x": np.full(N, np.nan), "peak_y": np.full(N, np.nan),
+           "half_rising": np.full(N, np.nan), "half_falling": np.full(N, np.nan),
+           "peak_kind": np.zeros(N, dtype=int), "extrema": np.zeros(N, dtype=int)}
+    bell = np.flatnonzero(~monotone & ~flat)
+    if len(bell):
+        _peaks(curves, bell, seq_u, F, L_lo, L_hi, out)
+        out["extrema"][bell] = [_extremum_count(F[r], mtol[r]) for r in bell]
+    # ------------------------------------------------ normalization
+    use_mono = np.where(by_limits, monotone, monotone_in_range)
+    with np.errstate(invalid="ignore"):
+        pmax = np.fmax(smax, np.where(out["peak_kind"] > 0, out["peak_y"], -np.inf))
+        pmin = np.fmin(smin, np.where(out["peak_kind"] < 0, out["peak_y"], np.inf))
+    low = np.where(by_limits, np.where(monotone, np.fmin(L_lo, L_hi), pmin), ymin)
+    span = np.where(by_limits, np.where(monotone, np.abs(L_hi - L_lo), pmax - pmin), ymax - ymin)
+    span = np.where(flat | ~(span > 0), 1.0, span)
+    curves.low, curves.span = low, span
+    Yn = (Y - low[:, None]) / span[:, None]
+    direction = np.where(by_limits, np.sign(L_hi - L_lo), np.sign(Y[:, -1] - Y[:, 0]))
+    direction = np.where(flat, 0, np.nan_to_num(direction)).astype(int)
+    out.update({"x": grid, "y": Y, "y_normalized": Yn, "monotone": monotone,
+                "monotone_in_range": monotone_in_range, "direction": direction,
+                "response_min": ymin, "response_max": ymax, "limit_lower": L_lo,
+                "limit_upper": L_hi, "limit_lower_ok": ok_lo, "limit_upper_ok": ok_hi,
+                "limit_lower_at": at_lo, "limit_upper_at": at_hi,
+                "by_limits": by_limits, "low": low, "span": span, "spacing": axis.spacing,
+                "domain": domain, "normalization": normalization})
     # ------------------------------------------------ EC levels: bracket, then solve
+    ec_rows = np.flatnonzero(use_mono & ~flat)
+    Fn = np.where(by_limits[:, None], (F - low[:, None]) / span[:, None], np.nan)
+    Fn[:, len(lower_x):len(lower_x) + points] = Yn        # range rows search the grid only
     for q in LEVELS:
         ec = np.full(N, np.nan)
-        h = Yn[ok] - q
-        s = np.sign(h)
-        cross = s[:, :-1] * s[:, 1:] <= 0
-        has = cross.any(axis=1)
-        j = np.argmax(cross, axis=1)
-        rows = ok[has]
-        j = j[has]
-        if len(rows):
-            k = np.arange(len(ok))[has]
-            u = _illinois(curves, rows, u_grid[j], u_grid[j + 1], h[k, j], h[k, j + 1], q)
-            ec[rows] = np.exp(u)
+        if len(ec_rows):
+            has, j = _crossing(Fn[ec_rows] - q)
+            rows, j = ec_rows[has], j[has]
+            if len(rows):
+                h = Fn[rows] - q
+                k = np.arange(len(rows))
+                u = illinois(lambda rr, uu, q=q: curves.norm(rr, uu) - q, rows,
+                              seq_u[j], seq_u[j + 1], h[k, j], h[k, j + 1])
+                ec[rows] = axis.to_x(u)
         out[f"ec{int(round(100 * q))}"] = ec
     with np.errstate(divide="ignore", invalid="ignore"):
-        out["hill_effective"] = math.log(81.0) / np.log(out["ec90"] / out["ec10"])
-    # ------------------------------------------------ steepest slopes
-    for key, scale in (("max_log_slope", False), ("max_slope", True)):
-        at = np.full(N, np.nan)
-        val = np.full(N, np.nan)
-        if len(ok):
-            g = np.gradient(Yn[ok], u_grid, axis=1)
-            if scale:
-                g = g / grid
-            j = np.argmax(np.abs(g), axis=1)
-            a = u_grid[np.maximum(j - 1, 0)]
-            b = u_grid[np.minimum(j + 1, points - 1)]
-
-            def mag(rows, u, scale=scale):
-                sl = curves.log_slope(rows, u)
-                return np.abs(sl * np.exp(-u) if scale else sl)
-
-            u_best, _ = _golden_max(mag, ok, a, b)
-            slope = curves.log_slope(ok, u_best)
-            if scale:
-                slope = slope * np.exp(-u_best)
-            at[ok] = np.exp(u_best)
-            val[ok] = slope
-        out[key] = val
-        out[key + "_at"] = at
+        hill = math.log(81.0) / np.log(out["ec90"] / out["ec10"])
+    out["hill_effective"] = hill if domain != "signed" else np.full(N, np.nan)
+    _slopes(curves, axis, grid, u_grid, Yn, ~flat, out)
     # ------------------------------------------------ saturation at the range ends
-    # If the normalized response still climbs at an end of the range, the
-    # range cuts the curve: ec levels and Hill coefficients then describe the
-    # range as much as the scheme. Flag it (end log-slopes above 5% of the
-    # steepest one).
-    end = np.maximum(np.abs(Yn[:, 1] - Yn[:, 0]) / (u_grid[1] - u_grid[0]),
-                     np.abs(Yn[:, -1] - Yn[:, -2]) / (u_grid[-1] - u_grid[-2]))
-    out["saturated"] = (end <= SATURATION_FRACTION * np.abs(out["max_log_slope"])) & ~flat
+    with np.errstate(invalid="ignore"):
+        dom_span = np.where(monotone, np.abs(L_hi - L_lo), pmax - pmin)
+        gap_lo = np.abs(Y[:, 0] - L_lo) / dom_span
+        gap_hi = np.abs(Y[:, -1] - L_hi) / dom_span
+    out["unreached_lower"], out["unreached_upper"] = gap_lo, gap_hi
+    out["saturated"] = (ok_lo & ok_hi & ~flat & (gap_lo <= SATURATION_TOLERANCE)
+                        & (gap_hi <= SATURATION_TOLERANCE))
     return out
 
 
-# ------------------------------------------------------------------ Hill fit
+def _peaks(curves: _Curves, rows: np.ndarray, seq_u, F, L_lo, L_hi, out) -> None:
+    """Peak (or trough) of each row in ``rows`` and its half-points, written
+    into ``out``. The extremum is the one lying beyond both limits (farther
+    out of the two); its half-points are where f is halfway between it and
+    the limit on each side (the crossing nearest the peak)."""
+    N = len(F)
+    Fr = F[rows]
+    fin = np.isfinite(Fr)
+    i = np.arange(len(rows))
+    first = Fr[i, np.argmax(fin, axis=1)]
+    last = Fr[i, Fr.shape[1] - 1 - np.argmax(fin[:, ::-1], axis=1)]
+    left = np.where(np.isfinite(L_lo[rows]), L_lo[rows], first)
+    right = np.where(np.isfinite(L_hi[rows]), L_hi[rows], last)
+    up = np.nanmax(Fr, axis=1) - np.maximum(left, right)
+    down = np.minimum(left, right) - np.nanmin(Fr, axis=1)
+    kind = np.zeros(N)
+    kind[rows] = np.where(up >= down, 1.0, -1.0)
+    k = np.nanargmax(kind[rows, None] * Fr, axis=1)
+    ka = np.where(fin[i, np.maximum(k - 1, 0)], np.maximum(k - 1, 0), k)
+    kb = np.where(fin[i, np.minimum(k + 1, Fr.shape[1] - 1)], np.minimum(k + 1, Fr.shape[1] - 1), k)
+    a, b = seq_u[ka], seq_u[kb]
 
-def hill_fit(x: np.ndarray, y: np.ndarray, *, n0: float, K0: float, max_iter: int = 200) -> dict:
-    """Least-squares fit of H(c) = c^n/(K^n + c^n) to (x, y), n of either sign.
+    def signed(rr, uu):
+        with np.errstate(all="ignore"):
+            v = kind[rr] * curves.safe_raw(rr, curves.axis.to_x(uu))
+        return np.where(np.isfinite(v), v, -np.inf)
 
-    Levenberg–Marquardt on (n, ln K), writing H = 1/(1 + exp(−n (ln c − ln K))).
-    Returns ``n``, ``K`` and ``rms`` (root-mean-square residual).
-    """
-    u = np.log(np.asarray(x, dtype=float))
-    y = np.asarray(y, dtype=float)
+    u_best, v_best = golden_max(signed, rows, a, b)
+    # golden section places a smooth extremum to about sqrt(eps); a root of the
+    # central-difference derivative (Illinois) places it to about eps^(2/3)
+    h = curves.step(u_best)
+    h_full = np.zeros(N)
+    h_full[rows] = h
 
-    def model(theta):
-        z = theta[0] * (u - theta[1])
-        return 0.5 * (1.0 + np.tanh(0.5 * z))          # logistic, overflow-free
+    def slope(rr, uu):
+        return (signed(rr, uu + h_full[rr]) - signed(rr, uu - h_full[rr])) / (2.0 * h_full[rr])
 
-    def jac(theta):
-        H = model(theta)
-        dH = H * (1.0 - H)
-        return np.stack([dH * (u - theta[1]), -dH * theta[0]], axis=1)
+    ga, gb = slope(rows, a), slope(rows, b)
+    sel = (ga > 0) & (gb < 0)
+    if sel.any():
+        u_best[sel] = illinois(slope, rows[sel], a[sel], b[sel], ga[sel], gb[sel])
+        v_best[sel] = signed(rows[sel], u_best[sel])
+    peak = kind[rows] * v_best
+    out["peak_x"][rows] = curves.axis.to_x(u_best)
+    out["peak_y"][rows] = peak
+    out["peak_kind"][rows] = kind[rows].astype(int)
+    # half-points: the last crossing before the peak, the first after it
+    target = np.zeros(N)
+    cols = np.arange(Fr.shape[1] - 1)
+    for base, before in ((left, True), (right, False)):
+        t = 0.5 * (base + peak)
+        H = Fr - t[:, None]
+        with np.errstate(invalid="ignore"):
+            cross = (H[:, :-1] * H[:, 1:] <= 0) & ((cols[None, :] < k[:, None]) if before
+                                                   else (cols[None, :] >= k[:, None]))
+        has = cross.any(axis=1)
+        j = (cross.shape[1] - 1 - np.argmax(cross[:, ::-1], axis=1)) if before else np.argmax(cross, axis=1)
+        if not has.any():
+            continue
+        sub, j = np.flatnonzero(has), j[has]
+        target[rows[sub]] = t[sub]
+        u = illinois(lambda rr, uu: curves.raw(rr, curves.axis.to_x(uu)) - target[rr], rows[sub],
+                      seq_u[j], seq_u[j + 1], H[sub, j], H[sub, j + 1])
+        rising = (kind[rows[sub]] > 0) == before
+        x = curves.axis.to_x(u)
+        out["half_rising"][rows[sub[rising]]] = x[rising]
+        out["half_falling"][rows[sub[~rising]]] = x[~rising]
 
-    theta = np.array([n0 if np.isfinite(n0) and n0 != 0 else 1.0,
-                      math.log(K0) if np.isfinite(K0) and K0 > 0 else float(np.median(u))])
-    r = model(theta) - y
-    cost = float(r @ r)
-    lam = 1e-3
-    small = False
-    for _ in range(max_iter):
-        J = jac(theta)
-        A = J.T @ J
-        g = J.T @ r
-        improved = False
-        for _ in range(30):
-            try:
-                step = np.linalg.solve(A + lam * np.diag(np.diag(A) + 1e-300), -g)
-            except np.linalg.LinAlgError:
-                break
-            trial = theta + step
-            rt = model(trial) - y
-            ct = float(rt @ rt)
-            if ct < cost:
-                improved = True
-                small = (abs(cost - ct) <= 1e-15 * max(cost, 1e-300)
-                         or bool(np.all(np.abs(step) <= 1e-13 * (1 + np.abs(theta)))))
-                theta, r, cost = trial, rt, ct
-                lam = max(lam / 10.0, 1e-12)
-                break
-            lam *= 10.0
-        if not improved or small:
-            break
-    return {"n": float(theta[0]), "K": float(math.exp(theta[1])),
-            "rms": float(math.sqrt(cost / len(y)))}
+
+def _slopes(curves: _Curves, axis: Axis, grid, u_grid, Yn, ok_mask, out) -> None:
+    """Steepest dŷ/dx and dŷ/d ln x over the range (golden section in u)."""
+    N, points = Yn.shape
+    ok = np.flatnonzero(ok_mask)
+    g = np.gradient(Yn[ok], u_grid, axis=1) if len(ok) else np.zeros((0, points))
+    # d/dx and d/d ln x from d/du: u = ln x (log axis) or u = x (linear axis)
+    transforms = {"max_log_slope": (lambda s, u: s) if axis.log else (lambda s, u: s * u),
+                  "max_slope": (lambda s, u: s * np.exp(-u)) if axis.log else (lambda s, u: s)}
+    for key, tr in transforms.items():
+        at, val = np.full(N, np.nan), np.full(N, np.nan)
+        if len(ok) and not (key == "max_log_slope" and axis.domain == "signed"):
+            j = np.argmax(np.abs(tr(g, u_grid)), axis=1)
+            a = u_grid[np.maximum(j - 1, 0)]
+            b = u_grid[np.minimum(j + 1, points - 1)]
+
+            def mag(rows, u, tr=tr):
+                return np.abs(tr(curves.slope(rows, u), u))
+
+            u_best, _ = golden_max(mag, ok, a, b)
+            at[ok] = axis.to_x(u_best)
+            val[ok] = tr(curves.slope(ok, u_best), u_best)
+        out[key] = val
+        out[key + "_at"] = at
 
 
 # ------------------------------------------------------------------ one curve
@@ -354,9 +516,9 @@ def _num(v):
     return v if math.isfinite(v) else None
 
 
-
 def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
-                   points: int = 61, values: dict | None = None) -> dict:
+                   points: int = 61, values: dict | None = None,
+                   normalization: str = "limits", spacing: str = "auto") -> dict:
     """Response of one observable to one input over [lo, hi].
 
     Parameters
@@ -367,29 +529,36 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
     input : str
         The symbol swept over the range (normally an input).
     lo, hi : float
-        The range, 0 < lo < hi; the grid is log-spaced.
+        The range, lo < hi, inside the input's domain.
     points : int
         Grid points (≥ 5).
     values : dict, optional
         Values of the other symbols (name → number); missing ones take the
         model's values.
+    normalization : ``"limits"`` (default) or ``"range"``
+    spacing : ``"auto"`` (default), ``"log"`` or ``"linear"``
 
     Returns
     -------
     dict
         ``input``, ``observable``, ``range``, ``values`` (every symbol but the
-        input), ``curve`` (``x``, ``y``, ``y_normalized``), ``direction``,
-        ``monotone``, ``response_min``, ``response_max``, ``ec10``, ``ec50``,
-        ``ec90``, ``hill_effective`` (ln 81 / ln(ec90/ec10)), ``max_slope``,
-        ``max_slope_at``, ``max_log_slope``, ``max_log_slope_at`` (slopes of
-        the normalized response, d/dc and d/d ln c), ``hill_fit`` (``n``,
-        ``K``, ``rms``) and ``note``. See the module docstring for the
-        definitions and signs.
+        input), ``spacing``, ``domain``, ``normalization`` (what was used),
+        ``limits`` (``lower``/``upper``: ``at``, ``value``, ``established``,
+        ``evaluated_at``, ``how``), ``curve`` (``x``, ``y``, ``y_normalized``), ``direction``,
+        ``monotone``, ``monotone_in_range``, ``response_min``,
+        ``response_max``, ``ec10``, ``ec50``, ``ec90``, ``hill_effective``
+        (ln 81 / ln(ec90/ec10)), ``max_slope``, ``max_slope_at``,
+        ``max_log_slope``, ``max_log_slope_at``, ``hill_fit`` (``n``, ``K``,
+        ``rms``), ``logistic_fit`` (signed inputs), ``peak`` (``x``, ``y``,
+        ``kind``) and ``half_points`` (``rising``, ``falling``) when not
+        monotone, ``saturated``, ``saturation_tolerance``, ``unreached``,
+        ``warnings`` (list of sentences) and ``note``. Unavailable numbers
+        are None. See the module docstring for the definitions and signs.
 
     Examples
     --------
-    For single-site binding c/(K + c) over a wide range, n_H ≈ 1 and
-    ec90/ec10 ≈ 81 (Goldbeter & Koshland 1981).
+    Single-site binding c/(K + c) gives n_H = 1, EC50 = K and EC90/EC10 = 81
+    (Goldbeter & Koshland 1981) over any range, normalized to its limits.
     """
     values = dict(values or {})
     if input in values:
@@ -399,36 +568,131 @@ def response_curve(model, *, observable: str, input: str, lo: float, hi: float,
             raise EvaluationError(f"value of {k!r} must be a single number for one response curve")
     lo, hi = check_range(lo, hi)
     _input_column(model, input)
+    check_in_domain(lo, hi, input, input_domain(model, input))
     base = model.as_array({**values, input: lo})
-    s = response_summaries(model, base, observable=observable, input=input,
-                           lo=lo, hi=hi, points=points)
+    s = response_summaries(model, base, observable=observable, input=input, lo=lo, hi=hi,
+                           points=points, normalization=normalization, spacing=spacing)
+    one = {k: (v[0] if isinstance(v, np.ndarray) and v.ndim >= 1 and len(v) == 1 else v)
+           for k, v in s.items() if k not in ("x", "y", "y_normalized")}
     x, y, yn = s["x"], s["y"][0], s["y_normalized"][0]
-    direction = {1: "increasing", -1: "decreasing", 0: "none"}[int(s["direction"][0])]
-    monotone = bool(s["monotone"][0])
-    fit = hill_fit(x, yn, n0=float(s["hill_effective"][0]), K0=float(s["ec50"][0]))
+    direction = {1: "increasing", -1: "decreasing", 0: "none"}[int(one["direction"])]
+    monotone, by_limits = bool(one["monotone"]), bool(one["by_limits"])
+    signed = s["domain"] == "signed"
     result = {
         "input": input,
         "observable": observable,
         "range": [lo, hi],
         "points": int(points),
+        "spacing": s["spacing"],
+        "domain": s["domain"],
         "values": {k: float(v) for k, v in zip(model.symbols, base[0]) if k != input},
+        "normalization": "limits" if by_limits else "range",
+        "limits": _limits_report(one, s["domain"]),
         "curve": {"x": x.tolist(), "y": y.tolist(), "y_normalized": yn.tolist()},
         "direction": direction,
         "monotone": monotone,
-        "response_min": float(s["response_min"][0]),
-        "response_max": float(s["response_max"][0]),
+        "monotone_in_range": bool(one["monotone_in_range"]),
+        "response_min": float(one["response_min"]),
+        "response_max": float(one["response_max"]),
     }
     for key in ("ec10", "ec50", "ec90", "hill_effective", "max_slope", "max_slope_at",
                 "max_log_slope", "max_log_slope_at"):
-        result[key] = _num(s[key][0])
-    result["hill_fit"] = fit
-    result["saturated"] = bool(s["saturated"][0])
-    note = ("model predictions of the scheme, not measurements; the response is normalized "
-            "to [0, 1] over the range (min to max)")
-    if not result["saturated"]:
-        note += ("; the response is still changing at an end of the range, so ec levels and "
-                 "Hill coefficients are relative to this range: widen it")
+        result[key] = _num(one[key])
+    result["hill_fit"] = None
+    if result["ec50"] is not None:
+        fit = _reference_fit(model, base, input, observable, one, x, yn, signed, by_limits)
+        result["logistic_fit" if signed else "hill_fit"] = fit
     if not monotone:
-        note += "; it is not monotone over the range, so ec10/ec50/ec90 are first crossings"
-    result["note"] = note
+        result["peak"] = {"x": _num(one["peak_x"]), "y": _num(one["peak_y"]),
+                          "y_normalized": _num((one["peak_y"] - one["low"]) / one["span"]),
+                          "kind": "maximum" if one["peak_kind"] > 0 else "minimum",
+                          "in_range": bool(lo <= one["peak_x"] <= hi)}
+        result["half_points"] = {"rising": _num(one["half_rising"]), "falling": _num(one["half_falling"])}
+    result["saturated"] = bool(one["saturated"])
+    result["saturation_tolerance"] = SATURATION_TOLERANCE
+    result["unreached"] = {"lower": _num(one["unreached_lower"]), "upper": _num(one["unreached_upper"])}
+    result["warnings"] = _warnings(result, one, normalization)
+    result["note"] = (NOTE + "; normalized to " + (
+        "its extremes over the range" if not by_limits else
+        "the observable's limits at the ends of the input's domain" if monotone else
+        "the observable's extremes over the domain (its limits and its peak)"))
     return result
+
+
+def _reference_fit(model, base, input, observable, one, x, yn, signed, by_limits) -> dict:
+    """Hill (or, for a signed input, logistic) fit to ŷ. Normalized to its
+    limits, the curve is fitted on a grid spanning the range and the EC10–EC90
+    band widened by its own width on each side, so a range that cuts the
+    curve does not bend the reference; normalized to the range, on the grid."""
+    ec10, ec50, ec90 = (float(one[k]) for k in ("ec10", "ec50", "ec90"))
+    if by_limits and np.isfinite(ec10) and np.isfinite(ec90):
+        a, b = sorted((ec10, ec90))
+        if signed:
+            lo, hi = min(x[0], a - (b - a)), max(x[-1], b + (b - a))
+            xf = np.linspace(lo, hi, len(x))
+        else:
+            xf = np.geomspace(min(x[x > 0][0], a * a / b), max(x[-1], b * b / a), len(x))
+        axis = Axis("linear" if signed else "log", xf[0], xf[-1], "signed" if signed else "positive")
+        curves = _Curves(model, base, _input_column(model, input), observable, axis)
+        curves.low, curves.span = np.array([one["low"]]), np.array([one["span"]])
+        yf = curves.norm(np.zeros(len(xf), dtype=int), axis.to_u(xf))
+    else:
+        xf, yf = x, yn
+    if signed:
+        fit = logistic_fit(xf, yf, x0=ec50, s0=(ec90 - ec10) / (2.0 * math.log(9.0)))
+    else:
+        pos = xf > 0
+        fit = hill_fit(xf[pos], yf[pos], n0=float(one["hill_effective"]), K0=ec50)
+        xf = xf[pos]
+    fit["window"] = [float(xf[0]), float(xf[-1])]
+    return fit
+
+
+def _limits_report(one: dict, domain: str) -> dict:
+    ends = {"lower": "-inf" if domain == "signed" else "0", "upper": "+inf"}
+    rep = {}
+    for side in ("lower", "upper"):
+        ok = bool(one[f"limit_{side}_ok"])
+        exact = side == "lower" and domain == "non-negative" and ok
+        rep[side] = {"at": ends[side], "value": _num(one[f"limit_{side}"]) if ok else None,
+                     "established": ok, "evaluated_at": _num(one[f"limit_{side}_at"]),
+                     "how": ("evaluated at 0 (edges with a zero rate removed)" if exact else
+                             "converged far beyond the range" if ok else
+                             "not established: the observable did not settle before the model "
+                             "refused the input or float64 ran out")}
+    return rep
+
+
+def _warnings(r: dict, one: dict, normalization: str) -> list:
+    """Every caveat of one curve, as sentences (printed by the CLI too)."""
+    w = []
+    lim = r["limits"]
+    missing = [s for s in ("lower", "upper") if not lim[s]["established"]]
+    if missing:
+        w.append(f"the limit at the {' and '.join(missing)} end of the input's domain could not be "
+                 "established" + ("; normalized to the range instead" if normalization == "limits" else "")
+                 + "; saturation is unknown")
+    elif not r["saturated"]:
+        w.append(f"not saturated: the response at an end of the range is more than "
+                 f"{100 * SATURATION_TOLERANCE:g}% of its span from its limit (lower "
+                 f"{100 * (r['unreached']['lower'] or 0):.3g}%, upper {100 * (r['unreached']['upper'] or 0):.3g}%)"
+                 + ("" if not r["monotone"] else
+                    "; EC levels lie where the limits put them, widen the range to see them"
+                    if r["normalization"] == "limits" else
+                    "; EC levels and Hill coefficients are relative to this range: widen it"))
+    if not r["monotone"]:
+        p = r["peak"]
+        w.append(f"not monotone: {p['kind']} of {p['y']:.6g} at {r['input']} = {p['x']:.6g}"
+                 + ("" if p["in_range"] else " (outside the range)")
+                 + "; no EC levels, effective Hill coefficient or Hill fit are given")
+        if one["extrema"] > 1:
+            w.append(f"{int(one['extrema'])} extrema: the peak reported is the largest excursion")
+        if r["monotone_in_range"] and r["normalization"] == "range" and r["ec50"] is not None:
+            w[-1] = w[-1].replace("no EC levels, effective Hill coefficient or Hill fit are given",
+                                  "EC levels and Hill values describe the range only")
+    if r["domain"] == "signed":
+        w.append("signed input: the effective Hill coefficient and slopes in ln x are not defined; "
+                 "see logistic_fit (x_half, slope_factor)")
+    elif r["spacing"] == "linear" and r["range"][0] <= 0:
+        w.append("the range starts at 0: the Hill fit and log-slopes use the points with x > 0")
+    return w

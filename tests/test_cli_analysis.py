@@ -109,18 +109,15 @@ def test_response_json(files, capsys):
                 "max_slope_at", "max_log_slope", "max_log_slope_at", "hill_fit"):
         assert key in r
     assert len(r["curve"]["x"]) == len(r["curve"]["y"]) == 31
-    # p_On = s/(K + s), K = koff/kon = 2 (single-site form, common practice), normalized over the range
-    K = 2.0
-    f = lambda c: c / (K + c)  # noqa: E731
-    t = f(1e-3) + 0.5 * (f(1e3) - f(1e-3))
-    assert r["ec50"] == pytest.approx(K * t / (1 - t), rel=1e-10)
-    assert r["hill_effective"] == pytest.approx(1.0, abs=0.01)
+    # p_On = s/(K + s), K = koff/kon = 2 (single-site form, common practice), normalized to its
+    # limits 0 and 1: EC50 = K and n_H = 1 (Goldbeter & Koshland, PNAS 78 (1981) 6840)
+    assert r["ec50"] == pytest.approx(2.0, rel=1e-10)
+    assert r["hill_effective"] == pytest.approx(1.0, abs=1e-9)
+    assert r["normalization"] == "limits" and r["monotone"] is True
     assert "not measurements" in r["note"]
     r2 = run_json(capsys, ["response", str(sw), "--observable", "on", "--input", "s",
                            "--range", "1e-3:1e3", "--set", "kon=8", "--json"])
-    K = 0.5
-    t = f(1e-3) + 0.5 * (f(1e3) - f(1e-3))
-    assert r2["ec50"] == pytest.approx(K * t / (1 - t), rel=1e-10)
+    assert r2["ec50"] == pytest.approx(0.5, rel=1e-10)
     assert r2["values"]["kon"] == 8.0
 
 
@@ -175,14 +172,12 @@ def test_sample_csv_workers_and_json(files, capsys):
     assert r["columns"][-1] == "saturated"
     assert r["summary"]["hill_effective"]["count"] == 40
     rows = np.array(r["rows"], dtype=float)
-    # every sample is single-site binding s/(K + s), K = koff/kon: exact levels of the
-    # range-normalized curve, then n_H = ln 81 / ln(ec90/ec10) (Goldbeter & Koshland, PNAS 78 (1981) 6840)
+    # every sample is single-site binding s/(K + s), K = koff/kon: normalized to its limits
+    # 0 and 1, EC_q = K q/(1 - q), then n_H = ln 81 / ln(ec90/ec10) (Goldbeter & Koshland, PNAS 78 (1981) 6840)
     K = rows[:, 1] / rows[:, 0]
-    f = lambda c: c / (K + c)  # noqa: E731
     ec = {}
     for q in (0.1, 0.5, 0.9):
-        t = f(1e-4) + q * (f(1e4) - f(1e-4))
-        ec[q] = K * t / (1 - t)
+        ec[q] = K * q / (1 - q)
         np.testing.assert_allclose(rows[:, r["columns"].index(f"ec{int(100 * q)}")], ec[q], rtol=1e-9)
     np.testing.assert_allclose(rows[:, r["columns"].index("hill_effective")],
                                math.log(81) / np.log(ec[0.9] / ec[0.1]), rtol=1e-8)
@@ -207,7 +202,8 @@ def test_fit_json(files, capsys):
     (["response", "{sw}", "--observable", "on", "--input", "z", "--range", "1:10"], "unknown input 'z'"),
     (["response", "{sw}", "--observable", "on", "--input", "s", "--range", "10:1"], "bad range '10:1'"),
     (["response", "{sw}", "--observable", "on", "--input", "s", "--range", "abc"], "bad range 'abc'"),
-    (["response", "{sw}", "--observable", "on", "--input", "s", "--range", "0:1"], "bad range '0:1'"),
+    (["response", "{sw}", "--observable", "on", "--input", "s", "--range", "-1:1"],
+     "input 's' cannot be negative"),
     (["response", "{sw}", "--observable", "on", "--input", "s", "--range", "1:10", "--set", "kon"],
      "expected NAME=VALUE"),
     (["passage", "{sw}", "--from", "Off", "--to", "Nowhere"], "unknown state 'Nowhere'"),
