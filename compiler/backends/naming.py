@@ -106,11 +106,13 @@ def check_c_names(names, what: str) -> None:
 def c_constants(prefix: str, names, taken: set[str]) -> list[str]:
     """Collision-free C identifiers ``PREFIX_<stem>`` for ``names``, in order.
 
-    ``taken`` holds identifiers already used (it is updated); a clash gets
-    ``_2``, ``_3``, ... (the first free suffix)."""
+    Letters and digits are kept, a non-ASCII character is spelled ``u00E9``,
+    anything else becomes ``_``. ``taken`` holds identifiers already used (it
+    is updated); a clash gets ``_2``, ``_3``, ... (the first free suffix)."""
     out = []
     for n in names:
-        base = re.sub(r"[^A-Za-z0-9]+", "_", n).strip("_")[:MAX_STEM].strip("_") or "x"
+        spelled = "".join(ch if ch.isascii() else f"_u{ord(ch):04X}_" for ch in n)
+        base = re.sub(r"[^A-Za-z0-9]+", "_", spelled).strip("_")[:MAX_STEM].strip("_") or "x"
         ident = f"{prefix}_{base}"
         k = 2
         while ident in taken:
