@@ -367,7 +367,7 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
     if chosen.method == "numeric":
         raise TooLargeError(f"{scheme.origin}: too large for straight-line source "
                             f"({chosen.reasons['elimination_flops']:,} flops); use the looped numeric path")
-    fn, iface = _emit_function(scheme, method=chosen.method, checks=target in ("python", "c"))
+    fn, iface = _emit_function(scheme, method=chosen.method, checks=target in ("python", "c", "cython"))
     name = stem(scheme.name)
     files = dict(back.emit(fn, name=name, interface=iface) if target in ("python", "c", "cython")
                  else back.emit(fn, name=name))

@@ -190,6 +190,18 @@ def test_emit_llvm_carries_no_names(tmp_path):
     assert not canary.exists()
 
 
+STATUSES = """\
+def statuses(m):
+    import numpy as np
+    good = [m.DEFAULTS[k] for k in m.SYMBOLS]
+    res = []
+    for bad in (good, [0.0, good[1]], [good[0], -1.0], [float("inf"), good[1]]):
+        X = np.array([good, bad, good])
+        res.append(int(m.run(X, np.zeros((3, m.N_OUTPUTS)), 0, 3)))
+    return res
+"""
+
+
 def test_emit_cython_builds_and_reads_back(tmp_path):
     """The emitted .pyx with payload names (NUL included), built by its own
     setup.py in a child process and imported in a fresh interpreter: names
@@ -203,16 +215,19 @@ def test_emit_cython_builds_and_reads_back(tmp_path):
     assert all(p.read_text().isascii() for p in paths)
     subprocess.run([sys.executable, "setup.py", "build_ext", "--inplace"], cwd=out, check=True,
                    capture_output=True)
-    code = ("import json, sys; sys.path.insert(0, sys.argv[1]); m = __import__(sys.argv[2]); "
+    code = ("import json, sys; sys.path.insert(0, sys.argv[1]); m = __import__(sys.argv[2])\n"
             "print(json.dumps([m.MODEL, m.STATES, m.SYMBOLS, m.OBSERVABLES, m.DEFAULTS, "
             "m.steady_state([m.DEFAULTS[k] for k in m.SYMBOLS]).tolist(), "
-            "m.observables([m.DEFAULTS[k] for k in m.SYMBOLS]).tolist()]))")
+            "m.observables([m.DEFAULTS[k] for k in m.SYMBOLS]).tolist(), statuses(m)]))")
+    code = STATUSES + code
     res = subprocess.run([sys.executable, "-c", code, str(out), naming.stem(s.name)],
                          capture_output=True, text=True, check=True, cwd=tmp_path)
-    model, states, symbols, observables, defaults, p, obs = json.loads(res.stdout)
+    model, states, symbols, observables, defaults, p, obs, status = json.loads(res.stdout)
     assert not canary.exists()
     assert model == s.name and states == list(s.states) and symbols == list(s.symbols)
     assert observables == list(s.observables) and defaults == s.defaults()
+    # a zero, a negative and a non-finite rate: the row is refused, never NaN with 0
+    assert status == [0, 2, 2, 2]
     api = compile_scheme(s, backend="python", cache=False)
     np.testing.assert_allclose(p[0], api.steady_state(s.defaults())[0], rtol=1e-14)
     np.testing.assert_allclose(obs[0], api.observables(s.defaults())[0], rtol=1e-14)
@@ -260,6 +275,11 @@ def test_long_sums_split_with_left_to_right_rounding():
     assert np.array_equal(got[:, 0], total) and np.array_equal(got[:, 1], prod)
     (src,) = pyback.emit(fn).values()
     assert max(line.count(" + ") for line in src.splitlines()) < 40
+    if CC is not None:  # the C back end splits the same way (a local accumulator)
+        from treeflux.compiler.backends import c as cback
+        ctext = cback.emit(fn, name="longsum")["longsum.c"]
+        assert max(line.count(" + ") for line in ctext.splitlines()) < 40
+        assert np.array_equal(cback.build(fn, name="longsum")(X), got)
 
 
 # ------------------------------------------------------------------ error status

@@ -32,6 +32,7 @@ import re
 from fractions import Fraction
 
 from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.progress import progress
 
 from ..ir import Function
 from .naming import (Interface, c_constants, c_string, check_c_names, probability_blocks,
@@ -635,4 +636,7 @@ def build(fn: Function, *, name: str = "treeflux_model") -> Kernel:
     function is ``<name>_eval_range`` called through ctypes (GIL released).
     The kernel carries ``version`` (the ``sha256:`` digest of the body)."""
     sources = emit(fn, name=name)
-    return build_from_source(sources, name, fn.n_inputs, len(fn.outputs), flags_for(fn))
+    with progress("native compilation (C)", total=1, unit="module") as bar:
+        kernel = build_from_source(sources, name, fn.n_inputs, len(fn.outputs), flags_for(fn))
+        bar.update(1)
+    return kernel

@@ -50,10 +50,12 @@ import numpy as np
 
 from treeflux.runtime import cache
 from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
+from treeflux.runtime.progress import progress
 
 from ..ir import Function
 from .c import LANES, block_layout, c_identifier, expression_parts
-from .naming import Interface, py_defaults, py_groups, py_string, py_tuple
+from .naming import (Interface, probability_blocks, probability_tolerance, py_defaults, py_groups,
+                     py_string, py_tuple)
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
 #: reference evaluator's and the C back end's (which compiles as ISO C99).
@@ -71,15 +73,14 @@ _PYX = """\
 # run(x, out, start, stop, threads=1) -> int
 #   x: C-contiguous float64 (N, N_INPUTS), out: C-contiguous float64
 #   (N, N_OUTPUTS); evaluates rows start..stop-1. Returns 0, or r+1 for the
-#   first row r holding a non-finite input (NaN or +-inf); rows before r are
-#   written. Positivity of the rates is checked by the caller. With
-#   threads > 1 the blocks of {lanes} rows are shared out by OpenMP (prange,
+#   first row r {refused}; rows before r are
+#   written. With threads > 1 the blocks of {lanes} rows are shared out by OpenMP (prange,
 #   static schedule) when the module was built with it.
 #
 # Workspace of one thread: w[(j)*{lanes} + b] is input j of lane b, then
 # w[({n_in} + s)*{lanes} + b] is slot s ({n_slots} slots).
 from cython.parallel cimport prange
-from libc.math cimport exp, log, sqrt, pow
+from libc.math cimport exp, log, sqrt, pow{math_extra}
 from libc.stdint cimport uintptr_t
 from libc.stdlib cimport malloc, free
 
@@ -104,7 +105,7 @@ cdef inline double _powi(double a, int m) noexcept nogil:
 cdef void _block(double *w) noexcept nogil:
 {calls}
 
-cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
+{valid_fn}cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
                       Py_ssize_t stop) noexcept nogil:
     # Rows start..stop-1, {lanes} at a time: 0, r+1 (first non-finite row r)
     # or -1 (no memory for the workspace).
@@ -135,7 +136,7 @@ cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
                 bad = b
                 break
         _block(w)
-        for b in range(bad):
+{validate}        for b in range(bad):
             yr = y + (r0 + b) * {n_out}
 {stores}        if bad < n:
             status = r0 + bad + 1
@@ -259,6 +260,43 @@ def _names(iface: Interface | None) -> str:
         groups=py_groups(iface))
 
 
+_REFUSED_INPUTS = """holding a non-finite input (NaN or +-inf). Positivity
+#   of the rates is checked by the caller"""
+
+_REFUSED_CHECKED = """refused: a non-finite input (NaN or +-inf), a rate
+#   (edge label) that is not positive and finite -- a zero concentration
+#   removes an edge, which this straight-line code cannot do: solve such rows
+#   with treeflux itself -- or a result that is not finite or not a
+#   probability vector"""
+
+_VALIDATE = """\
+        for b in range(bad):
+            if not _valid(w, b):
+                bad = b
+                break
+"""
+
+
+def _valid_function(fn: Function, iface: Interface, ref) -> str:
+    """``_valid(w, b)``: 1 when lane b's rates are positive and finite and its
+    results finite probability vectors (the trailing ``iface.checks`` outputs
+    of ``fn`` are the rates)."""
+    n_out = len(fn.outputs) - iface.checks
+    lines = ["cdef int _valid(double *w, int b) noexcept nogil:", "    cdef double s, v"]
+    for o in fn.outputs[n_out:]:
+        lines += [f"    v = {ref(o)}", "    if not (v > 0.0 and isfinite(v)):", "        return 0"]
+    for o in fn.outputs[:n_out]:
+        lines += [f"    v = {ref(o)}", "    if not isfinite(v):", "        return 0"]
+    for a, b in probability_blocks(iface):
+        lines.append("    s = 0.0")
+        for o in fn.outputs[a:b]:
+            lines += [f"    v = {ref(o)}", "    if not (v >= 0.0 and v <= 1.0):",
+                      "        return 0", "    s += v"]
+        lines += [f"    if fabs(s - 1.0) > {probability_tolerance(b - a)!r}:", "        return 0"]
+    lines += ["    return 1", "", "", ""]
+    return "\n".join(lines)
+
+
 def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
     """The ``.pyx`` source of ``fn``: ``{"<name>.pyx": text}``.
 
@@ -266,8 +304,8 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     offsets into the workspace). The text ends with a comment holding the
     SHA-256 of everything above it."""
     name = c_identifier(name)
-    n_in, n_out = fn.n_inputs, len(fn.outputs)
-    if n_out == 0:
+    n_in, n_out = fn.n_inputs, len(fn.outputs) - (interface.checks if interface else 0)
+    if n_out <= 0:
         raise ValueError("a function with no outputs has nothing to emit")
     slot, n_slots, ref, chunks = block_layout(
         fn, input_ref=lambda j: f"w[{j * LANES} + b]",
@@ -288,11 +326,16 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
                          + f"        {target} = t\n")
         parts.append("".join(lines))
     calls = "".join(f"    _part{p}(w)\n" for p in range(len(chunks))) or "    pass\n"
-    stores = "".join(f"            yr[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs))
+    stores = "".join(f"            yr[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs[:n_out]))
+    checked = interface is not None
     text = _PYX.format(name=name, n_in=n_in, n_out=n_out, n_slots=n_slots, lanes=LANES,
                        lanes_less=LANES - 1, n_words=max(1, n_in + n_slots) * LANES,
                        parts="".join(parts), calls=calls, stores=stores,
-                       names=_names(interface))
+                       names=_names(interface),
+                       refused=_REFUSED_CHECKED if checked else _REFUSED_INPUTS,
+                       math_extra=", fabs, isfinite" if checked else "",
+                       valid_fn=_valid_function(fn, interface, ref) if checked else "",
+                       validate=_VALIDATE if checked else "")
     digest = hashlib.sha256(text.encode()).hexdigest()
     text += f'\nVERSION = "sha256:{digest}"\n'
     return {f"{name}.pyx": text}
@@ -450,4 +493,7 @@ def build_from_source(pyx: str, n_inputs: int, n_outputs: int) -> CythonKernel:
 def build(fn: Function, *, name: str = "treeflux_model") -> CythonKernel:
     """Emit ``fn`` as Cython, build it through the cache and load it in-process."""
     (pyx,) = emit(fn, name=name).values()
-    return build_from_source(pyx, fn.n_inputs, len(fn.outputs))
+    with progress("native compilation (Cython)", total=1, unit="module") as bar:
+        kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs))
+        bar.update(1)
+    return kernel

@@ -160,7 +160,10 @@ def _expr(op: str, args: list[str], data) -> str:
     if op in ("exp", "log", "sqrt"):
         return f"np.{op}({args[0]})"
     if op == "max":
-        return f"np.maximum({args[0]}, {args[1]})"
+        expr = args[0]
+        for a in args[1:]:
+            expr = f"np.maximum({expr}, {a})"
+        return expr
     raise ValueError(f"python back end: unknown op {op!r}")
 
 
@@ -173,7 +176,7 @@ def _statements(target: str, op: str, xs: list[str], data) -> list[str]:
         for k in range(MAX_OPERANDS, len(xs), MAX_OPERANDS - 1):
             lines.append(f"    {target} = {sign.join([target, *xs[k:k + MAX_OPERANDS - 1]])}")
         return lines
-    if op == "max" and len(xs) > 2:
+    if op == "max" and len(xs) > MAX_OPERANDS:
         lines = [f"    {target} = {_expr(op, xs[:2], data)}"]
         lines += [f"    {target} = {_expr(op, [target, x], data)}" for x in xs[2:]]
         return lines
