@@ -92,13 +92,19 @@ def test_c_index_constants_are_collision_free(tmp_path):
     assert subprocess.run([str(tmp_path / "t")]).returncode == 0
 
 
-@pytest.mark.skipif(CC is None, reason="needs a C compiler")
-def test_c_main_refuses_missing_default(tmp_path):
+def no_default_scheme() -> Scheme:
+    """X <-> Y with rates a (value 2) and b (no value in the model)."""
     s = Scheme(name="nodefault")
     s.add_parameter("a", value=2.0)
     s.add_parameter("b")
     s.add_edge("X", "Y", "a")
     s.add_edge("Y", "X", "b")
+    return s
+
+
+@pytest.mark.skipif(CC is None, reason="needs a C compiler")
+def test_c_main_refuses_missing_default(tmp_path):
+    s = no_default_scheme()
     emit(s, "c", tmp_path)
     subprocess.run([CC, *STRICT, "-o", "ex", "main.c", "nodefault.c", "-lm"], cwd=tmp_path,
                    check=True, capture_output=True)
@@ -137,11 +143,7 @@ def test_python_module_in_fresh_interpreter(tmp_path, example):
 
 
 def test_python_inputs_refuses_missing_default(tmp_path):
-    s = Scheme(name="nodefault")
-    s.add_parameter("a", value=2.0)
-    s.add_parameter("b")
-    s.add_edge("X", "Y", "a")
-    s.add_edge("Y", "X", "b")
+    s = no_default_scheme()
     (mod,) = [p for p in emit(s, "python", tmp_path) if p.suffix == ".py"]
     ns: dict = {}
     exec(compile(mod.read_text(), str(mod), "exec"), ns)

@@ -95,6 +95,80 @@ def py_groups(iface: "Interface") -> str:
                            sorted(iface.groups.items())) + "}"
 
 
+def py_names(iface: "Interface") -> str:
+    """The name constants of an emitted Python or Cython module."""
+    return "\n".join([
+        "# MODEL is the scheme's name; STATES, SYMBOLS (the input columns), OBSERVABLES",
+        "# and OUTPUTS (every output column) name it; DEFAULTS maps a symbol to the",
+        "# model's value (symbols without one are absent); GROUPS maps an output group",
+        "# (p, basis, obs) to its (start, stop) columns.",
+        f"MODEL = {py_string(iface.model)}",
+        f"STATES = {py_tuple(iface.states)}",
+        f"SYMBOLS = {py_tuple(iface.symbols)}",
+        f"OBSERVABLES = {py_tuple(iface.observables)}",
+        f"OUTPUTS = {py_tuple(iface.outputs)}",
+        f"DEFAULTS = {py_defaults(iface)}",
+        f"GROUPS = {py_groups(iface)}",
+        f"N_STATES = {len(iface.states)}",
+        f"N_OBSERVABLES = {len(iface.observables)}", ""])
+
+
+_PY_API = '''
+
+def _rows(X):
+    import numpy as np
+    X = np.asarray(X, dtype=np.float64)
+    X = X.reshape(1, -1) if X.ndim == 1 else X
+    if X.ndim != 2 or X.shape[1] != N_INPUTS:
+        raise ValueError("X must have N_INPUTS = %d columns" % N_INPUTS)
+    return np.ascontiguousarray(X)
+
+
+def inputs(values=None):
+    """One row (1, N_INPUTS): the model's defaults, updated from a dict."""
+    import numpy as np
+    values = dict(values or {{}})
+    unknown = [k for k in values if k not in SYMBOLS]
+    if unknown:
+        raise KeyError("unknown symbol %r" % (unknown[0],))
+    row = []
+    for s in SYMBOLS:
+        if s not in values and s not in DEFAULTS:
+            raise KeyError("symbol %r has no default value; give one" % (s,))
+        row.append(float(values.get(s, DEFAULTS.get(s))))
+    return np.array([row], dtype=np.float64).reshape(1, N_INPUTS)
+
+
+def evaluate(X{sig}):
+    """Outputs (N, N_OUTPUTS) of inputs X (N, N_INPUTS) or one row;
+    ValueError for a row that run() refuses."""
+    import numpy as np
+    X = _rows(X)
+    out = np.empty((X.shape[0], N_OUTPUTS))
+    status = run(X, out, 0, X.shape[0]{args})
+    if status:
+        raise ValueError("row %d refused: a non-finite input, a rate that is not positive "
+                         "and finite, or a result that is not a probability vector" % (status - 1))
+    return out
+
+
+def steady_state(X{sig}):
+    a, b = GROUPS.get("p", (0, 0))
+    return evaluate(X{args})[:, a:b]
+
+
+def observables(X{sig}):
+    a, b = GROUPS.get("obs", (0, 0))
+    return evaluate(X{args})[:, a:b]
+'''
+
+
+def py_model_api(*, threads: bool) -> str:
+    """``inputs``, ``evaluate``, ``steady_state`` and ``observables`` of an
+    emitted module, over its ``run`` (which takes ``threads`` in Cython)."""
+    return _PY_API.format(sig=", threads=1" if threads else "", args=", threads" if threads else "")
+
+
 def check_c_names(names, what: str) -> None:
     """Refuse names a C string cannot carry (an embedded NUL)."""
     for n in names:
