@@ -88,6 +88,8 @@ def test_compile_name_never_runs(tmp_path, backend):
 
 
 def test_stem_is_a_safe_identifier():
+    assert [naming.stem(t) for t in ("main", "setup", "numpy", "json", "Enzyme 2")] == \
+        ["main_model", "setup_model", "numpy_model", "json_model", "enzyme_2"]
     for text in ["../../etc/passwd", 'x"""\n', "é", "", "import", "3abc", "a" * 200, "\x00"]:
         st = naming.stem(text)
         assert st.isidentifier() and st.isascii() and len(st) <= naming.MAX_STEM + 8

@@ -24,18 +24,25 @@ from __future__ import annotations
 import keyword
 import math
 import re
+import sys
 from dataclasses import dataclass
 
 from ..errors import ModelError
 
 #: Longest identifier stem we derive (C99 guarantees 63 significant characters).
 MAX_STEM = 40
+#: Stems that would collide with a file emitted beside the model (main.c,
+#: setup.py) or shadow a module the emitted code imports or a user may need.
+RESERVED_STEMS = frozenset({"main", "setup", "build", "numpy", "cython", "setuptools",
+                            "treeflux", *(m.lower() for m in sys.stdlib_module_names)})
 
 
 def stem(text, *, fallback: str = "model") -> str:
     """An ASCII identifier made from ``text``: other characters become ``_``,
     runs of ``_`` shrink to one, a leading digit gets the prefix ``m_``, and a
-    Python keyword gets the suffix ``_model``. Lower case.
+    Python keyword or a name in :data:`RESERVED_STEMS` (``main``, ``setup``,
+    ``numpy``, the standard library's modules) gets the suffix ``_model``.
+    Lower case.
 
     >>> stem('my-model "v2"\\n')
     'my_model_v2'
@@ -45,7 +52,7 @@ def stem(text, *, fallback: str = "model") -> str:
         ident = fallback
     if not ident[0].isalpha():
         ident = "m_" + ident
-    if keyword.iskeyword(ident):
+    if keyword.iskeyword(ident) or ident in RESERVED_STEMS:
         ident += "_model"
     return ident
 
