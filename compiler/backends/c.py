@@ -19,8 +19,12 @@ walk is quadratic in the memory accesses of one function (measured here: a
 speed on Q3/Q4-sized bodies.
 
 The ABI is written into the header; :func:`emit` is deterministic (same
-Function and name, same bytes) and never puts symbol or state names into the
-code: inputs and outputs are positions.
+Function and name, same bytes). Inputs and outputs are positions; emitted for
+a model (an :class:`~.naming.Interface`), the header also declares the
+model's names as escaped string literals, index constants derived from them,
+the default values and the output layout, and every row is checked (rates
+positive and finite, results probability vectors) before it is written.
+User text enters the code only through :mod:`.naming`.
 """
 
 from __future__ import annotations

@@ -257,9 +257,13 @@ def _valid_function(fn: Function, iface: Interface, ref) -> str:
 def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
     """The ``.pyx`` source of ``fn``: ``{"<name>.pyx": text}``.
 
-    Deterministic; positions only (inputs, outputs and temporaries are
-    offsets into the workspace). The text ends with a comment holding the
-    SHA-256 of everything above it."""
+    Deterministic; inputs, outputs and temporaries are offsets into the
+    workspace. With an ``interface`` (:mod:`.naming`) the module also carries
+    the model's names as escaped literals and the Python-level
+    ``evaluate``/``steady_state``/``observables``, and the last
+    ``interface.checks`` outputs of ``fn`` are rates checked per row like the
+    results. The text ends with a line holding the SHA-256 of everything
+    above it."""
     name = c_identifier(name)
     n_in, n_out = fn.n_inputs, len(fn.outputs) - (interface.checks if interface else 0)
     if n_out <= 0:
