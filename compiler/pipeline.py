@@ -19,9 +19,9 @@ from treeflux.runtime.model import CompiledModel, ModelInfo
 from treeflux.runtime.safe_io import write_files
 
 from . import ir
+from .backends.naming import Interface, stem
 from .errors import ModelError, TooLargeError
 from .frontend import build
-from .backends.naming import Interface, stem
 from .model import Scheme
 
 BACKENDS = ("python", "c", "cython", "llvm")
@@ -176,6 +176,14 @@ def _backend(name: str):
     return importlib.import_module(f"treeflux.compiler.backends.{name}")
 
 
+def _kernel_name(name) -> str:
+    """``compile_scheme(name=)`` as the ASCII stem the kernels are named by:
+    user text never enters generated code (nor the cache key beyond it)."""
+    if not isinstance(name, str):
+        raise ModelError(f"compile_scheme: name must be a string, got {type(name).__name__}")
+    return stem(name, fallback="treeflux_model")
+
+
 def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "python",
                    jacobian: bool = False, log_jacobian: bool = False,
                    input_derivatives: str | None = None,
@@ -202,14 +210,10 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
 
     timings = {}
     back = _backend(backend)
-    if not isinstance(name, str):
-        raise ModelError(f"compile_scheme: name must be a string, got {type(name).__name__}")
-    # User text never enters generated code: kernels are named by an ASCII stem.
-    kernel_name = stem(name, fallback="treeflux_model")
+    name = _kernel_name(name)
     scheme.validate()
     label_fn = _label_function(scheme)
-    label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(
-        label_fn, name=f"{kernel_name}_rates")
+    label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
     options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
                "input_derivatives": input_derivatives, "name": name}
     key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
@@ -257,7 +261,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
             fn = _derivatives(scheme, fn, jacobian=jacobian, log=log_jacobian,
                               along=input_derivatives, timings=timings, report=deriv_report)
         t0 = time.perf_counter()
-        kernel = back.build(ir.compact(fn), name=kernel_name)
+        kernel = back.build(ir.compact(fn), name=name)
         timings["backend"] = time.perf_counter() - t0
         groups = dict(fn.groups)
     sym = {s.name: s for s in scheme.parameters + scheme.inputs}
