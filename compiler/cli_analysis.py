@@ -159,7 +159,6 @@ def _print_response(r) -> None:
 def _plot_response(plt, r, path) -> None:
     """The normalized curve, its reference fit, EC lines and the peak."""
     import numpy as np
-    from treeflux.runtime import safe_io
     fig, ax = plt.subplots(figsize=(6.4, 4.4))
     x = np.array(r["curve"]["x"])
     yn = np.array(r["curve"]["y_normalized"])

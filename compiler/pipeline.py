@@ -16,8 +16,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from treeflux.runtime.model import CompiledModel, ModelInfo
+from treeflux.runtime.safe_io import write_files
 
 from . import ir
+from .backends.naming import Interface, stem
 from .errors import ModelError, TooLargeError
 from .frontend import build
 from .model import Scheme
@@ -174,6 +176,14 @@ def _backend(name: str):
     return importlib.import_module(f"treeflux.compiler.backends.{name}")
 
 
+def _kernel_name(name) -> str:
+    """``compile_scheme(name=)`` as the ASCII stem the kernels are named by:
+    user text never enters generated code (nor the cache key beyond it)."""
+    if not isinstance(name, str):
+        raise ModelError(f"compile_scheme: name must be a string, got {type(name).__name__}")
+    return stem(name, fallback="treeflux_model")
+
+
 def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "python",
                    jacobian: bool = False, log_jacobian: bool = False,
                    input_derivatives: str | None = None,
@@ -200,6 +210,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
 
     timings = {}
     back = _backend(backend)
+    name = _kernel_name(name)
     scheme.validate()
     label_fn = _label_function(scheme)
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
@@ -379,22 +390,16 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
     if chosen.method == "numeric":
         raise TooLargeError(f"{scheme.origin}: too large for straight-line source "
                             f"({chosen.reasons['elimination_flops']:,} flops); use the looped numeric path")
-    fn, _ = build(scheme, method=chosen.method)
-    kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
-    key = "p" if "p" in fn.groups else "basis"
-    kept.add_group(key, fn.group(key))
-    fn = ir.compact(_simplify(kept, None))
-    name = "".join(ch if ch.isalnum() else "_" for ch in scheme.name).strip("_").lower() or "model"
-    if not name[0].isalpha():
-        name = "m_" + name
-    files = dict(back.emit(fn, name=name))
+    fn, iface = _emit_function(scheme, method=chosen.method, checks=target in ("python", "c", "cython"))
+    name = stem(scheme.name)
+    files = dict(back.emit(fn, name=name, interface=iface) if target in ("python", "c", "cython")
+                 else back.emit(fn, name=name))
     if hasattr(back, "embed_example"):
-        files.update(back.embed_example(fn, name=name))
-    # Names stay out of generated code; this data file says what each column is.
+        files.update(back.embed_example(fn, name=name, interface=iface))
+    # The same names as data, for tools that read the layout rather than the code.
     layout = {"scheme": scheme.name, "symbols": list(scheme.symbols),
-              "outputs": {key: list(scheme.states) if key == "p" else
-                          [f"{c}:{st}" for c in range(len(fn.outputs) // len(scheme.states))
-                           for st in scheme.states]},
+              "defaults": scheme.defaults(), "observables": list(scheme.observables),
+              "outputs": {g: list(iface.outputs[a:b]) for g, (a, b) in iface.groups.items()},
               "note": "outputs are model predictions of the scheme, not measurements"}
     files[f"{name}.layout.json"] = json.dumps(layout, indent=2, sort_keys=True) + "\n"
     from treeflux.runtime.safe_io import write_files
@@ -405,3 +410,37 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
         from treeflux.runtime.safe_io import OutputError
         raise OutputError(f"cannot write into {out}: {exc.strerror or exc}") from None
     return write_files({out / fname: files[fname] for fname in sorted(files)})  # all or nothing
+
+
+def _emit_function(scheme: Scheme, *, method: str, checks: bool):
+    """The Function an emitted file evaluates and the model :class:`Interface`
+    around it: outputs ``p`` (or ``basis``), then ``obs`` (the observables,
+    with a unique steady state), then with ``checks`` the distinct edge
+    labels (rates) that emitted code checks per row and does not write out."""
+    fn, _ = build(scheme, method=method)
+    kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
+    key = "p" if "p" in fn.groups else "basis"
+    kept.add_group(key, fn.group(key))
+    n = len(scheme.states)
+    outputs = list(scheme.states) if key == "p" else \
+        [f"{c}:{st}" for c in range(len(fn.group(key)) // max(1, n)) for st in scheme.states]
+    if key == "p" and scheme.observables:
+        nodes, _ = _observable_nodes(scheme, fn)
+        kept.add_group("obs", nodes)
+        outputs += list(scheme.observables)
+    if checks:
+        kept.add_group("rates", list(dict.fromkeys(fn.labels)))
+    fn = ir.compact(_simplify(kept, None))
+    groups = {g: ab for g, ab in fn.groups.items() if g != "rates"}
+    n_checks = 0
+    if checks:
+        a, b = fn.groups["rates"]
+        if b != len(fn.outputs):
+            raise AssertionError("emit: the rate checks must be the last outputs")
+        n_checks = b - a
+    defaults = scheme.defaults()
+    iface = Interface(model=scheme.name, states=tuple(scheme.states), symbols=tuple(scheme.symbols),
+                      defaults=tuple(float(defaults.get(s, float("nan"))) for s in scheme.symbols),
+                      observables=tuple(scheme.observables) if "obs" in groups else (),
+                      groups=groups, outputs=tuple(outputs), checks=n_checks)
+    return fn, iface

@@ -19,8 +19,12 @@ walk is quadratic in the memory accesses of one function (measured here: a
 speed on Q3/Q4-sized bodies.
 
 The ABI is written into the header; :func:`emit` is deterministic (same
-Function and name, same bytes) and never puts symbol or state names into the
-code: inputs and outputs are positions.
+Function and name, same bytes). Inputs and outputs are positions; emitted for
+a model (an :class:`~.naming.Interface`), the header also declares the
+model's names as escaped string literals, index constants derived from them,
+the default values and the output layout, and every row is checked (rates
+positive and finite, results probability vectors) before it is written.
+User text enters the code only through :mod:`.naming`.
 """
 
 from __future__ import annotations
@@ -32,14 +36,19 @@ import re
 from fractions import Fraction
 
 from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.progress import progress
 
 from ..ir import Function
+from .naming import (Interface, c_constants, c_string, check_c_names, probability_blocks,
+                     probability_tolerance)
 
 LANES = 8
 #: Rows per non-inlined part function when a body is split.
 CHUNK_ROWS = 150
 #: Integer exponents up to this magnitude become multiplications.
 POWI_LIMIT = 64
+#: Most operands of one emitted sum, product or maximum; longer ones are split.
+MAX_OPERANDS = 32
 
 BASE_FLAGS = ("-std=c99", "-march=native", "-fno-math-errno")
 
@@ -136,6 +145,29 @@ def expression(fn: Function, i: int, ref, *, max2: str, powi: str) -> str:
     raise ValueError(f"IR row {i}: op {op!r} has no lowering")
 
 
+def expression_parts(fn: Function, i: int, ref, *, acc: str, max2: str, powi: str) -> list[str]:
+    """Right-hand sides that compute IR row ``i`` in statements of bounded
+    depth: the first starts the value, each further one continues from the
+    accumulator ``acc``. Only sums, products and maxima of more than
+    :data:`MAX_OPERANDS` operands take several (folded left to right, so the
+    rounding is that of one long expression); parsers such as Cython's
+    recurse once per operand of a long expression."""
+    g = fn.graph
+    op, args = g.ops[i], g.args[i]
+    if op not in ("add", "mul", "max") or len(args) <= MAX_OPERANDS:
+        return [expression(fn, i, ref, max2=max2, powi=powi)]
+    xs = [ref(a) for a in args]
+    if op == "max":
+        first = xs[0]
+        for x in xs[1:MAX_OPERANDS]:
+            first = f"{max2}({first}, {x})"
+        return [first, *(f"{max2}({acc}, {x})" for x in xs[MAX_OPERANDS:])]
+    sign = " + " if op == "add" else " * "
+    step = MAX_OPERANDS - 1
+    return [sign.join(xs[:MAX_OPERANDS]),
+            *(sign.join([acc, *xs[k:k + step]]) for k in range(MAX_OPERANDS, len(xs), step))]
+
+
 def allocate_slots(fn: Function) -> tuple[dict[int, int], int]:
     """Workspace slot of every computed row, reusing slots after a value's last use.
 
@@ -186,12 +218,7 @@ _HEADER = """\
    _eval_range evaluates rows start .. stop-1 of the same full arrays (disjoint
    ranges may run in different threads: the functions keep no state).
 
-   Returns 0 when every row was evaluated, else r+1 where r is the first row
-   holding a non-finite input (NaN or +-inf); rows before r are written, rows
-   from r on are not (the value is capped at INT_MAX). This is the only check:
-   rates must also be positive, which the caller validates (treeflux's Python
-   runtime does); non-positive inputs are evaluated as given.
-
+{returns}
    {name}_version is "sha256:" and the SHA-256 of the text of {name}.c up to
    the line that defines it.
    Needs only the C standard library and libm (link with -lm).
@@ -205,7 +232,7 @@ extern "C" {{
 
 #define {upper}_N_INPUTS {n_in}
 #define {upper}_N_OUTPUTS {n_out}
-
+{names}
 extern const int {name}_n_inputs;
 extern const int {name}_n_outputs;
 extern const char {name}_version[];
@@ -235,6 +262,7 @@ _PRELUDE = """\
 #define TF_LANES 8
 #define TF_NI {n_in_dim}
 #define TF_NO {n_out}
+#define TF_NR {n_res}
 #define TF_NW {n_slots}
 
 const int {name}_n_inputs = {n_in};
@@ -262,7 +290,7 @@ _DRIVER = """\
 int {name}_eval_range(const double *x, double *out, long start, long stop)
 {{
     double in[TF_NI][TF_LANES];
-    double res[TF_NO][TF_LANES];
+    double res[TF_NR][TF_LANES];
     long r0;
     for (r0 = start; r0 < stop; r0 += TF_LANES) {{
         int n = stop - r0 < TF_LANES ? (int)(stop - r0) : TF_LANES;
@@ -275,7 +303,7 @@ int {name}_eval_range(const double *x, double *out, long start, long stop)
             for (j = 0; j < {n_in}; j++)
                 if (!isfinite(in[j][b])) {{ bad = b; break; }}
         tf_block((const double (*)[TF_LANES])in, res);
-        for (b = 0; b < bad; b++) {{
+{validate}        for (b = 0; b < bad; b++) {{
             double *row = out + (r0 + b) * (long)TF_NO;
             for (k = 0; k < TF_NO; k++) row[k] = res[k][b];
         }}
@@ -294,8 +322,61 @@ int {name}_eval(const double *x, double *out, long n_rows)
 """
 
 
+_RETURNS_INPUTS = """\
+   Returns 0 when every row was evaluated, else r+1 where r is the first row
+   holding a non-finite input (NaN or +-inf); rows before r are written, rows
+   from r on are not (the value is capped at INT_MAX). This is the only check:
+   rates must also be positive, which the caller validates (treeflux's Python
+   runtime does); non-positive inputs are evaluated as given.
+"""
+
+_RETURNS_CHECKED = """\
+   Returns 0 when every row was evaluated, else r+1 where r is the first row
+   refused (the value is capped at INT_MAX): a non-finite input (NaN or
+   +-inf), a rate (edge label) at that row that is not positive and finite --
+   a zero concentration removes an edge, which this straight-line code cannot
+   do: solve such rows with treeflux itself -- or a result that is not finite
+   or not a probability vector (entries in [0, 1] summing to 1 within
+   rounding). Rows before r are written, rows from r on are not.
+"""
+
+_VALIDATE = """\
+static int tf_valid(const double (*res)[TF_LANES], int b)
+{{
+    int k;
+    double s;
+    (void)s;
+    for (k = TF_NO; k < TF_NR; k++)
+        if (!(res[k][b] > 0.0) || !isfinite(res[k][b])) return 0;
+    for (k = 0; k < TF_NO; k++)
+        if (!isfinite(res[k][b])) return 0;
+{blocks}    return 1;
+}}
+
+"""
+
+_VALIDATE_BLOCK = """\
+    s = 0.0;
+    for (k = {a}; k < {b}; k++) {{
+        if (!(res[k][b] >= 0.0 && res[k][b] <= 1.0)) return 0;
+        s += res[k][b];
+    }}
+    if (fabs(s - 1.0) > {tol}) return 0;
+"""
+
+
 def _lane_loop(target: str, rhs: str) -> str:
     return f"    for (b = 0; b < TF_LANES; b++) {target}[b] = {rhs};\n"
+
+
+def _row_loop(fn: Function, i: int, ref, target: str) -> str:
+    """The lane loop of IR row ``i``; a long row accumulates in a local ``t``."""
+    parts = expression_parts(fn, i, ref, acc="t", max2="tf_max2", powi="tf_powi")
+    if len(parts) == 1:
+        return _lane_loop(target, parts[0])
+    lines = [f"        double t = {parts[0]};\n", *(f"        t = {p};\n" for p in parts[1:])]
+    return ("    for (b = 0; b < TF_LANES; b++) {\n" + "".join(lines)
+            + f"        {target}[b] = t;\n    }}\n")
 
 
 def block_layout(fn: Function, *, input_ref, slot_ref):
@@ -330,8 +411,7 @@ def _body(fn: Function) -> str:
         out.append(f"static TF_NOINLINE void tf_part{p}({sig})\n{{\n    int b;\n")
         out.append("    (void)in; (void)w; (void)b;\n")
         for i in chunk:
-            rhs = expression(fn, i, ref, max2="tf_max2", powi="tf_powi")
-            out.append(_lane_loop(f"w[{slot[i]}]", rhs))
+            out.append(_row_loop(fn, i, ref, f"w[{slot[i]}]"))
         out.append("}\n\n")
     out.append("static void tf_block(const double (*restrict in)[TF_LANES], "
                "double (*restrict res)[TF_LANES])\n{\n")
@@ -344,7 +424,7 @@ def _body(fn: Function) -> str:
     return "".join(out), n_slots
 
 
-def emit(fn: Function, *, name: str) -> dict[str, str]:
+def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
     """C99 source and header for ``fn``.
 
     Parameters
@@ -353,6 +433,11 @@ def emit(fn: Function, *, name: str) -> dict[str, str]:
         A compacted Function (rows live and in topological order).
     name : str
         Prefix of the exported symbols, sanitised by :func:`c_identifier`.
+    interface : Interface, optional
+        The model's names, defaults and layout (:mod:`.naming`): the header
+        then declares name arrays, index constants and defaults, and the last
+        ``interface.checks`` outputs of ``fn`` are rates that every row checks
+        (with its results) before it is written; see the header's ABI text.
 
     Returns
     -------
@@ -360,50 +445,136 @@ def emit(fn: Function, *, name: str) -> dict[str, str]:
         ``{"<name>.c": source, "<name>.h": header}``; the ABI is in the header.
     """
     name = c_identifier(name)
-    n_in, n_out = fn.n_inputs, len(fn.outputs)
-    if n_out == 0:
+    n_in, n_res = fn.n_inputs, len(fn.outputs)
+    n_out = n_res - (interface.checks if interface else 0)
+    if n_out <= 0:
         raise ValueError("a function with no outputs has nothing to emit")
     body, n_slots = _body(fn)
-    fields = dict(name=name, n_in=n_in, n_in_dim=max(1, n_in), n_out=n_out,
-                  n_slots=max(1, n_slots))
+    fields = dict(name=name, n_in=n_in, n_in_dim=max(1, n_in), n_out=n_out, n_res=n_res,
+                  n_slots=max(1, n_slots), validate="")
     helpers = "".join("\n" + text for h, text in _HELPERS.items() if h + "(" in body)
-    text = (_PRELUDE.format(**fields) + helpers + "\n" + body + _DRIVER.format(**fields)
+    names_h = names_c = ""
+    if interface is not None:
+        names_h, names_c = _name_tables(interface, name)
+        fields["validate"] = ("        for (b = 0; b < bad; b++)\n"
+                              "            if (!tf_valid((const double (*)[TF_LANES])res, b)) "
+                              "{ bad = b; break; }\n")
+        blocks = "".join(_VALIDATE_BLOCK.format(a=a, b=b, tol=literal(probability_tolerance(b - a)))
+                         for a, b in probability_blocks(interface))
+        helpers += "\n" + _VALIDATE.format(blocks=blocks)
+    text = (_PRELUDE.format(**fields) + names_c + helpers + "\n" + body + _DRIVER.format(**fields)
             + "\n")
     digest = hashlib.sha256(text.encode()).hexdigest()  # of every line above the version
     text += f'const char {name}_version[] = "sha256:{digest}";\n'
     header = _HEADER.format(name=name, guard=f"TREEFLUX_{name.upper()}_H",
-                            upper=name.upper(), n_in=n_in, n_out=n_out)
+                            upper=name.upper(), n_in=n_in, n_out=n_out, names=names_h,
+                            returns=_RETURNS_CHECKED if interface else _RETURNS_INPUTS)
     return {f"{name}.c": text, f"{name}.h": header}
 
 
-def embed_example(fn: Function, name: str) -> dict[str, str]:
+def _string_array(decl: str, names) -> str:
+    items = "".join(f"    {c_string(n)},\n" for n in names)
+    return f"{decl} = {{\n{items}}};\n"
+
+
+def _name_tables(iface: Interface, name: str) -> tuple[str, str]:
+    """Header declarations and source definitions of the model's names,
+    index constants, defaults and output layout. Names appear only as escaped
+    string literals; the constants are identifiers derived by
+    :func:`.naming.c_constants`."""
+    check_c_names([iface.model], "model")
+    check_c_names(iface.states, "state")
+    check_c_names(iface.symbols, "symbol")
+    check_c_names(iface.observables, "observable")
+    up = name.upper()
+    counts = {"STATES": iface.states, "SYMBOLS": iface.symbols, "OBSERVABLES": iface.observables}
+    h = ["", "/* Names (UTF-8 strings, in order) and the model's default values. */"]
+    h += [f"#define {up}_N_{k} {len(v)}" for k, v in counts.items()]
+    taken = {f"{up}_N_{k}" for k in (*counts, "INPUTS", "OUTPUTS")}
+    for group, (a, b) in sorted(iface.groups.items(), key=lambda kv: kv[1]):
+        h.append(f"#define {up}_{group.upper()}_OFFSET {a}  /* outputs {a}..{b - 1} */")
+        taken.add(f"{up}_{group.upper()}_OFFSET")
+    for kind, names in (("STATE", iface.states), ("SYMBOL", iface.symbols),
+                        ("OBS", iface.observables)):
+        if names:
+            h.append(f"/* index constants: {name}_{kind.lower()}_names[{up}_{kind}_x] is the name */"
+                     if kind != "OBS" else
+                     f"/* index constants: {name}_observable_names[{up}_OBS_x] is the name */")
+        for k, ident in enumerate(c_constants(f"{up}_{kind}", names, taken)):
+            h.append(f"#define {ident} {k}")
+    h.append("")
+    h.append(f"extern const char {name}_model_name[];")
+    c = ["", f"const char {name}_model_name[] = {c_string(iface.model)};"]
+    arrays = [("state_names", iface.states, "STATES"), ("symbol_names", iface.symbols, "SYMBOLS"),
+              ("observable_names", iface.observables, "OBSERVABLES")]
+    for suffix, names, count in arrays:
+        if names:
+            decl = f"const char *const {name}_{suffix}[{up}_N_{count}]"
+            h.append(f"extern {decl};")
+            c.append(_string_array(decl, names).rstrip("\n"))
+    decl = f"const char *const {name}_output_names[{up}_N_OUTPUTS]"
+    h.append(f"extern {decl};")
+    c.append(_string_array(decl, iface.outputs).rstrip("\n"))
+    if iface.symbols:
+        h.append("/* default value of each symbol (NaN: the model gives none) */")
+        decl = f"const double {name}_defaults[{up}_N_SYMBOLS]"
+        h.append(f"extern {decl};")
+        vals = "".join(f"    {literal(v) if iface.has_default(j) else 'NAN'},\n"
+                       for j, v in enumerate(iface.defaults))
+        c.append(f"{decl} = {{\n{vals}}};")
+    return "\n".join(h) + "\n", "\n".join(c) + "\n"
+
+
+def embed_example(fn: Function, name: str, interface: Interface | None = None) -> dict[str, str]:
     """A ``main.c`` that evaluates one row and prints every output, and a
     ``BUILD.txt`` with the gcc command lines.
 
-    The program reads the inputs from its arguments (missing ones are 1.0),
-    prints one output per line with ``%.17g`` (enough digits to round-trip a
-    double) and exits with status 1 when the function refuses the row."""
+    The program reads the inputs from its arguments; missing ones take the
+    model's default values (with an ``interface``; without one they are
+    1.0). It prints one output per line with ``%.17g`` (enough digits to
+    round-trip a double), followed by a tab and the output's name, and exits
+    with status 1 when the function refuses the row."""
     name = c_identifier(name)
+    fill = "j + 1 < argc ? strtod(argv[j + 1], NULL) : 1.0"
+    missing, missing_doc = "", "missing ones are 1.0"
+    label = '"%.17g\\n", out[k]'
+    if interface is not None:
+        label = f'"%.17g\\t%s\\n", out[k], {name}_output_names[k]'
+    if interface is not None and interface.symbols:
+        fill = f"j + 1 < argc ? strtod(argv[j + 1], NULL) : {name}_defaults[j]"
+        missing = f"""\
+        if (isnan(x[j])) {{
+            fprintf(stderr, "{name}: symbol %s has no default value; give it as argument %d\\n",
+                    {name}_symbol_names[j], j + 1);
+            return 2;
+        }}
+"""
+        missing_doc = "missing ones take the model's default values"
+    n_pub = len(fn.outputs) - (interface.checks if interface else 0)
+    math_h = "#include <math.h>\n" if interface is not None else ""
     main = f"""\
-/* Example: evaluate {name} on one parameter set given on the command line. */
+/* Example: evaluate {name} on one parameter set given on the command
+   line ({missing_doc}). Prints each output
+   and its name; outputs are model predictions, not measurements. */
 #include <stdio.h>
 #include <stdlib.h>
-#include "{name}.h"
+{math_h}#include "{name}.h"
 
 int main(int argc, char **argv)
 {{
     double x[{max(1, fn.n_inputs)}];
-    double out[{len(fn.outputs)}];
+    double out[{n_pub}];
     int j, k, status;
-    for (j = 0; j < {name}_n_inputs; j++)
-        x[j] = j + 1 < argc ? strtod(argv[j + 1], NULL) : 1.0;
+    for (j = 0; j < {name}_n_inputs; j++) {{
+        x[j] = {fill};
+{missing}    }}
     status = {name}_eval(x, out, 1);
     if (status != 0) {{
-        fprintf(stderr, "{name}: row %d refused (non-finite input)\\n", status - 1);
+        fprintf(stderr, "{name}: row %d refused (see {name}.h)\\n", status - 1);
         return 1;
     }}
     for (k = 0; k < {name}_n_outputs; k++)
-        printf("%.17g\\n", out[k]);
+        printf({label});
     return 0;
 }}
 """
@@ -412,7 +583,7 @@ int main(int argc, char **argv)
 Build the example program (C99, standard library and libm only):
 
     gcc {flags} -o {name}_example main.c {name}.c -lm
-    ./{name}_example X0 X1 ...    # {fn.n_inputs} inputs; missing ones are 1.0
+    ./{name}_example X0 X1 ...    # {fn.n_inputs} inputs; {missing_doc}
 
 Build a shared library for another codebase:
 
@@ -469,4 +640,7 @@ def build(fn: Function, *, name: str = "treeflux_model") -> Kernel:
     function is ``<name>_eval_range`` called through ctypes (GIL released).
     The kernel carries ``version`` (the ``sha256:`` digest of the body)."""
     sources = emit(fn, name=name)
-    return build_from_source(sources, name, fn.n_inputs, len(fn.outputs), flags_for(fn))
+    with progress("native compilation (C)", total=1, unit="module") as bar:
+        kernel = build_from_source(sources, name, fn.n_inputs, len(fn.outputs), flags_for(fn))
+        bar.update(1)
+    return kernel

@@ -55,6 +55,7 @@ import struct
 import threading
 
 from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.progress import progress
 
 from ..errors import TooLargeError
 from ..ir import BINARY, NARY, OPS, UNARY, Function
@@ -600,4 +601,7 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
 def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False) -> Kernel:
     """Emit ``fn`` (see :func:`emit`) and JIT-compile it in this process."""
     (text,) = emit(fn, name=name, check_inputs=check_inputs).values()
-    return compile_text(text, fn.n_inputs, len(fn.outputs))
+    with progress("native compilation (LLVM)", total=1, unit="module") as bar:
+        kernel = compile_text(text, fn.n_inputs, len(fn.outputs))
+        bar.update(1)
+    return kernel
