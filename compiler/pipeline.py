@@ -216,6 +216,8 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
     options = {"jacobian": jacobian, "log_jacobian": log_jacobian, "jacobian_form": "log",
                "input_derivatives": input_derivatives, "name": name}
+    if jacobian:
+        options["jacobian_form"] = "log"  # compiled derivatives are log-form (runtime divides)
     key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
     hit = artifacts.load(key) if cache else None
     if hit is not None:
