@@ -353,13 +353,18 @@ class CompiledModel:
         return self._emitter(target, out_dir)
 
 
-
 # ------------------------------------------------------------ argument checks
 
 def _shown(value) -> str:
     """A short one-line repr for messages (no control characters, no numpy repr)."""
-    plain = isinstance(value, (str, int, float)) and not isinstance(value, bool)
-    text = repr(value) if plain else type(value).__name__
+    if isinstance(value, (bool, np.bool_)):
+        text = type(value).__name__
+    elif isinstance(value, (int, np.integer)):
+        text = repr(int(value))
+    elif isinstance(value, (float, np.floating)):
+        text = repr(float(value))
+    else:
+        text = repr(value) if isinstance(value, str) else type(value).__name__
     text = text if text.isprintable() else ascii(text)
     return text if len(text) <= 60 else text[:57] + "..."
 
