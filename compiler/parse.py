@@ -34,6 +34,7 @@ import keyword
 import math
 import tomllib
 import unicodedata
+import warnings
 from fractions import Fraction
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -179,7 +180,9 @@ def parse_label(text, *, where: str = "rate") -> Label:
     if "__" in source:
         raise ModelError(f"{where}: names with double underscores are not allowed in {_clip(source)}")
     try:
-        tree = ast.parse(source, mode="eval")
+        with warnings.catch_warnings():  # the text is data: no SyntaxWarning lines on stderr
+            warnings.simplefilter("ignore")
+            tree = ast.parse(source, mode="eval")
     except SyntaxError:
         raise ModelError(f"{where}: malformed rate expression {_clip(source)}") from None
     except (RecursionError, MemoryError, ValueError):
@@ -378,6 +381,8 @@ def constant_value(label: Label, where: str = "rate"):
         if kind == "sym":
             return None
         xs = [value(k) for k in node[1:]]
+        if kind == "div" and xs[1] is not None and xs[1] == 0:
+            raise ModelError(f"{where}: {_clip(label_text(node))} divides by zero")
         if any(x is None for x in xs):
             return None
         try:
