@@ -217,6 +217,10 @@ def _number(value, where: str, source: str | None, literal: str | None = None) -
         raise ModelError(f"{where}: the number {shown} {why}") from None
 
 
+def _start(node: ast.AST) -> tuple:
+    return (node.lineno, node.col_offset)
+
+
 class _Converter:
     """ast → Label. Sums and products are flattened along their chain
     without recursion, so ``k1 + k2 + ... + k500`` is one n-ary node and only
@@ -264,11 +268,16 @@ class _Converter:
                         "+ - * / ** ( ) and exp, log, sqrt")
 
     def chain(self, node: ast.BinOp, ops: tuple, depth: int) -> Label:
-        """Flatten a left-deep chain of the same kind of operator."""
+        """Flatten a left-deep chain of the same kind of operator (``a+b-c+d``);
+        a parenthesised left operand stays one term."""
         terms = []  # (negated, ast node), right to left
         while isinstance(node, ast.BinOp) and isinstance(node.op, ops):
             terms.append((isinstance(node.op, ast.Sub), node.right))
-            node = node.left
+            left = node.left
+            if _start(left) != _start(node):  # "(a+b)+c": the user's grouping is kept
+                node = left
+                break
+            node = left
         terms.append((False, node))
         terms.reverse()
         kids = [self.convert(t, depth + 1) for _, t in terms]
@@ -294,11 +303,15 @@ def _bounded(v):
             raise _Refuse(f"is {v:.3g}, outside the range [1e-300, 1e300] of a usable constant")
         return v
     if max(v.numerator.bit_length(), v.denominator.bit_length()) > MAX_CONSTANT_BITS:
-        raise _Refuse(f"needs more than {MAX_CONSTANT_BITS} bits as an exact fraction")
+        raise _Refuse(f"is too large to fold exactly (more than {MAX_CONSTANT_BITS} bits as a fraction)")
     lo, hi = CONSTANT_RANGE
     if v != 0 and not lo <= abs(v) <= hi:
         size = "large" if abs(v) > hi else "small"
-        raise _Refuse(f"is too {size} (about 1e{_log10(abs(v)):+.0f}; constants must lie in [1e-300, 1e300])")
+        try:
+            about = f"{float(abs(v)):.3g}" if float(abs(v)) else f"1e{_log10(abs(v)):+.0f}"
+        except OverflowError:
+            about = f"1e{_log10(abs(v)):+.0f}"
+        raise _Refuse(f"is too {size} (about {about}; constants must lie in [1e-300, 1e300])")
     return v
 
 
@@ -312,7 +325,7 @@ def _pow(a, b):
             raise _Refuse("is 0 to a negative power (a division by zero)")
         bits = max(a.numerator.bit_length(), a.denominator.bit_length()) - 1
         if abs(a) != 1 and abs(b) * bits > MAX_CONSTANT_BITS:
-            raise _Refuse(f"needs more than {MAX_CONSTANT_BITS} bits as an exact fraction")
+            raise _Refuse(f"is too large to fold exactly (more than {MAX_CONSTANT_BITS} bits as a fraction)")
         return a ** int(b)
     if a < 0:
         raise _Refuse("is a negative number to a non-integer power")
@@ -377,20 +390,27 @@ def constant_value(label: Label, where: str = "rate"):
             try:
                 return _bounded(node[1])
             except _Refuse as why:
-                raise ModelError(f"{where}: the number {_clip(label_text(node))} {why}") from None
+                raise ModelError(f"{where}: the number {_clip(label_text(node, brief=True))} {why}") from None
         if kind == "sym":
             return None
         xs = [value(k) for k in node[1:]]
         if kind == "div" and xs[1] is not None and xs[1] == 0:
-            raise ModelError(f"{where}: {_clip(label_text(node))} divides by zero")
+            raise ModelError(f"{where}: {_clip(label_text(node, brief=True))} divides by zero")
         if any(x is None for x in xs):
+            consts = [x for x in xs if x is not None]
+            if kind in ("add", "mul") and len(consts) > 1:
+                try:  # the constant terms of a chain are combined into one by folding
+                    _bounded(_apply(kind, consts))
+                except _Refuse as why:
+                    shown = _clip(label_text(node, brief=True))
+                    raise ModelError(f"{where}: the constant part of {shown} {why}") from None
             return None
         try:
             return _bounded(_apply(kind, xs))
         except _Refuse as why:
-            raise ModelError(f"{where}: the constant {_clip(label_text(node))} {why}") from None
+            raise ModelError(f"{where}: the constant {_clip(label_text(node, brief=True))} {why}") from None
         except (OverflowError, ZeroDivisionError, ValueError):
-            raise ModelError(f"{where}: the constant {_clip(label_text(node))} cannot be evaluated "
+            raise ModelError(f"{where}: the constant {_clip(label_text(node, brief=True))} cannot be evaluated "
                              "in floating point") from None
 
     return value(label)
@@ -409,20 +429,25 @@ def label_symbols(label: Label) -> list[str]:
     return list(seen)
 
 
-def label_text(label: Label) -> str:
-    """Canonical text of a label (fully parenthesised where needed)."""
+def label_text(label: Label, *, brief: bool = False) -> str:
+    """Canonical text of a label (fully parenthesised where needed).
+
+    ``brief``: numbers longer than 12 digits are shown in scientific notation
+    (for messages; not exact)."""
     kind = label[0]
     if kind == "num":
         v = label[1]
+        if brief and max(len(str(v.numerator)), len(str(v.denominator))) > 12:
+            return f"{float(v):.6g}" if 1e-300 <= abs(v) <= 1e300 else f"1e{_log10(abs(v)):+.0f}"
         return str(v.numerator) if v.denominator == 1 else f"({v.numerator}/{v.denominator})"
     if kind == "sym":
         return label[1]
     if kind == "neg":
-        return f"(-{label_text(label[1])})"
+        return f"(-{label_text(label[1], brief=brief)})"
     if kind in FUNCTIONS:
-        return f"{kind}({label_text(label[1])})"
+        return f"{kind}({label_text(label[1], brief=brief)})"
     sign = {"add": "+", "sub": "-", "mul": "*", "div": "/", "pow": "**"}[kind]
-    return "(" + sign.join(label_text(k) for k in label[1:]) + ")"
+    return "(" + sign.join(label_text(k, brief=brief) for k in label[1:]) + ")"
 
 
 # ---------------------------------------------------------------- model files
