@@ -20,7 +20,8 @@ import math
 from dataclasses import dataclass, field
 
 from .errors import ModelError
-from .parse import Label, check_name, constant_value, label_symbols, label_text, parse_label, safe_text
+from .parse import (Label, check_name, constant_value, label_symbols, label_text, lookalike_clash, parse_label,
+                    safe_text)
 
 
 @dataclass(frozen=True)
@@ -196,6 +197,10 @@ class Scheme:
         """Refuse empty schemes, undeclared symbols and unknown observable states."""
         if not self._edges:
             raise ModelError(f"{self.origin}: empty scheme; it needs at least one edge")
+        lookalike_clash(self._states, "state", self.origin)
+        used = {s: None for e in self._edges.values() for s in label_symbols(e.label)}
+        lookalike_clash(list(dict.fromkeys([*self.symbols, *used])), "symbol", self.origin)
+        lookalike_clash(self._observables, "observable", self.origin)
         declared = set(self.symbols)
         for e in self._edges.values():
             for s in label_symbols(e.label):

@@ -143,6 +143,27 @@ def check_name(name, what: str, where: str, *, symbol: bool = False) -> str:
     return name
 
 
+# Letters of other scripts drawn like Latin ones (NFKC keeps them apart).
+_HOMOGLYPHS = str.maketrans(
+    "АВЕКМНОРСТХУаеорсухіјѕІЈЅԁһԛԝүΑΒΕΖΗΙΚΜΝΟΡΤΥΧο",
+    "ABEKMHOPCTXYaeopcyxijsIJSdhqwyABEZHIKMNOPTYXo")
+
+
+def lookalike_clash(names, what: str, where: str) -> None:
+    """Refuse two different names that are drawn alike (``Apo`` and ``Аpo``
+    with a Cyrillic A): a file could otherwise use one where the reader sees
+    the other. The message names the differing character and its position."""
+    seen: dict[str, str] = {}
+    for name in names:
+        key = name.translate(_HOMOGLYPHS)
+        other = seen.setdefault(key, name)
+        if other != name:
+            pos, ch = next((i, a if a != a.translate(_HOMOGLYPHS) else b)
+                           for i, (a, b) in enumerate(zip(name, other), 1) if a != b)
+            raise ModelError(f"{where}: {what} names {other!r} and {name!r} look alike "
+                             f"(character {_char_name(ch)} at position {pos}); rename one")
+
+
 # ---------------------------------------------------------------- rate labels
 
 def _clip(source: str, n: int = 80) -> str:

@@ -377,3 +377,59 @@ def test_good_inputs_still_accepted(model):
     assert np.array_equal(model.steady_state(np.array([[1, 1, 1, 1, 1]], dtype=object)), want[:1])
     assert np.array_equal(model.steady_state({"k1": [1, 1, 1], "L": 1.0, "k2": 1, "k3": 1, "k4": 1}), want)
     assert np.array_equal(model.steady_state(np.ma.getdata(np.ma.array(X))), want)
+
+
+# ------------------------------------------------------------ mixed-script look-alikes
+
+def test_names_drawn_alike_are_refused(tmp_path):
+    # a Cyrillic А (U+0410) beside a Latin A: NFKC keeps them apart, a reader cannot
+    text = model_text('"k1"').replace('source = "Holo"\ntarget = "Apo"', 'source = "Holo"\ntarget = "\u0410po"')
+    refused(write(tmp_path, text), "'Apo' and 'Аpo' look alike", "U+0410 CYRILLIC CAPITAL LETTER A", "position 1")
+    s = Scheme()
+    s.add_edge("A", "B", "k\u043e")  # Cyrillic о
+    s.add_edge("B", "A", "ko")
+    with pytest.raises(ModelError, match="U\\+043E CYRILLIC SMALL LETTER O at position 2"):
+        s.validate()
+
+
+# ------------------------------------------------------------ the CLI: exit 2, one line
+
+CLI_CASES = {
+    "tower": model_text('"9**9**9"'),
+    "huge power": model_text('"10**400"'),
+    "division by zero": model_text('"1/0"'),
+    "zero to negative": model_text('"0**-1"'),
+    "2000 digits": model_text('"' + "7" * 2000 + '"'),
+    "negative constant": model_text('"-0.5"'),
+    "zero constant": model_text('"1-1"'),
+    "fullwidth": model_text('"ｋ1"'),
+    "zero width": model_text('"k\\u200b1"'),
+    "bidi": model_text('"k1*\\u202e2"'),
+    "newline state": model_text('"k1"', source='"Apo\\nHolo"'),
+    "escape in name": model_text('"k1"', name='"demo\\u001b[2J"'),
+    "deep TOML": "a = " + "[" * 3000 + "]" * 3000 + "\n",
+}
+
+
+@pytest.mark.parametrize("case", list(CLI_CASES))
+def test_cli_refuses_with_one_line(tmp_path, capsys, case):
+    path = write(tmp_path, CLI_CASES[case])
+    with hang_guard():
+        assert main(["profile", str(path)]) == 2
+    captured = capsys.readouterr()
+    lines = captured.err.splitlines()
+    assert captured.out == "" and len(lines) == 1 and lines[0].startswith(f"treeflux: {path}"), captured.err
+    assert_one_line(lines[0])
+
+
+def test_cli_accepts_byte_order_mark_and_flat_sum(tmp_path, capsys):
+    rate = '"' + "+".join(f"k{i}" for i in range(200)) + '"'
+    path = write(tmp_path, b"\xef\xbb\xbf" + model_text(rate).encode())
+    assert main(["profile", str(path)]) == 0
+    assert "Apo" in capsys.readouterr().out
+
+
+def test_cli_subprocess_tower_is_one_line(tmp_path):
+    res = cli_profile(write(tmp_path, model_text('"9**9**9"')))
+    assert res.returncode == 2 and res.stdout == ""
+    assert res.stderr.count("\n") == 1 and "edge Apo->Holo" in res.stderr and "4096 bits" in res.stderr
