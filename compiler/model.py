@@ -104,7 +104,7 @@ class Scheme:
         label = parse_label(rate, where=where)
         value = constant_value(label, where)
         if value is not None and not value > 0:
-            raise ModelError(f"{where}: the rate {safe_text(rate)!r} is the constant {float(value):g}; "
+            raise ModelError(f"{where}: the rate {str(rate)!r} is the constant {float(value):g}; "
                              "a rate must be positive (remove an edge that never fires)")
         self.add_state(source)
         self.add_state(target)

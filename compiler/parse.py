@@ -101,7 +101,7 @@ def _text_fault(text: str, *, letters_only: bool, allow_newlines: bool = False) 
             return f"{where}: not an assigned printable character"
         folded = unicodedata.normalize("NFKC", ch)
         if folded != ch:
-            return (f"{where} is a look-alike of {safe_text(folded)!r} (Unicode NFKC folds it); "
+            return (f"{where} is a look-alike of {folded!r} (Unicode NFKC folds it); "
                     "write the plain character")
         if cat.startswith("Z"):
             return f"{where}: only the plain space is allowed as a space"
@@ -122,14 +122,14 @@ def check_name(name, what: str, where: str, *, symbol: bool = False) -> str:
     digits, underscores, non-ASCII letters), not a keyword or function name,
     not starting with an underscore."""
     if not isinstance(name, str) or not name.strip():
-        shown = safe_text(repr(name)) if isinstance(name, str) else type(name).__name__
+        shown = repr(name) if isinstance(name, str) else type(name).__name__
         raise ModelError(f"{where}: {what} name must be a non-empty string, got {shown}")
     if len(name) > MAX_NAME_LENGTH:
-        raise ModelError(f"{where}: {what} name {safe_text(name[:40])!r}... is longer than "
+        raise ModelError(f"{where}: {what} name {name[:40]!r}... is longer than "
                          f"{MAX_NAME_LENGTH} characters")
     fault = _text_fault(name, letters_only=symbol)
     if fault:
-        raise ModelError(f"{where}: {what} name {safe_text(name)!r}: {fault}")
+        raise ModelError(f"{where}: {what} name {name!r}: {fault}")
     if name != name.strip():
         raise ModelError(f"{where}: {what} name {name!r} has leading or trailing spaces")
     if name.startswith("_"):
