@@ -57,6 +57,16 @@ def _check_number(value, what: str, where: str, positive: bool = False):
     return value
 
 
+def _identically_zero(label: Label) -> bool:
+    """A product (or quotient) with a constant factor 0: zero whatever the symbols."""
+    kind = label[0]
+    if kind == "mul":
+        return any(constant_value(k) == 0 or _identically_zero(k) for k in label[1:])
+    if kind in ("div", "neg"):
+        return constant_value(label[1]) == 0 or _identically_zero(label[1])
+    return False
+
+
 @dataclass
 class Scheme:
     """A kinetic scheme. Build it with :meth:`add_edge` and friends, or :func:`load`.
@@ -106,6 +116,9 @@ class Scheme:
         if value is not None and not value > 0:
             raise ModelError(f"{where}: the rate {str(rate)!r} is the constant {float(value):g}; "
                              "a rate must be positive (remove an edge that never fires)")
+        if _identically_zero(label):
+            raise ModelError(f"{where}: the rate {str(rate)!r} has a constant factor 0, so it is zero "
+                             "for every value of its symbols; a rate must be positive")
         self.add_state(source)
         self.add_state(target)
         self._edges[(source, target)] = Edge(source, target, str(rate), label)

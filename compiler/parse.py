@@ -32,6 +32,7 @@ from __future__ import annotations
 import ast
 import keyword
 import math
+import stat
 import tomllib
 import unicodedata
 import warnings
@@ -482,6 +483,8 @@ def _read_toml(path: Path, where: str) -> dict:
     """The TOML document of a model file; every failure is one ModelError line.
     A UTF-8 byte-order mark at the start is accepted."""
     try:
+        if stat.S_ISCHR(path.stat().st_mode) or stat.S_ISBLK(path.stat().st_mode):
+            raise ModelError(f"{where}: a device, not a model file")
         with open(path, "rb") as fh:
             raw = fh.read(MAX_MODEL_FILE_BYTES + 1)
     except FileNotFoundError:

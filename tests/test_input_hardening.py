@@ -134,6 +134,13 @@ def test_constant_rate_must_be_positive(tmp_path, rate):
     refused(write(tmp_path, model_text(rate)), "edge Apo->Holo", "must be positive")
 
 
+@pytest.mark.parametrize("rate", ["k1*(1-1)", "0*k1", "(2-2)/k1", "-(0*k1)*k2", "k1*(k2*(3-3))"])
+def test_rate_with_a_zero_factor_is_refused(rate):
+    with pytest.raises(ModelError, match="constant factor 0"):
+        Scheme(origin="m.toml").add_edge("Apo", "Holo", rate)
+    Scheme().add_edge("Apo", "Holo", rate.replace("0", "5").replace("-", "+"))  # a positive variant loads
+
+
 def test_constant_rate_refused_from_cli(tmp_path):
     res = cli_profile(write(tmp_path, model_text('"-0.5"')))
     assert res.returncode == 2 and res.stdout == ""
@@ -255,6 +262,16 @@ def test_genuine_deep_nesting_is_one_line():
     deep = "k" + "**k" * (MAX_DEPTH + 5)
     with pytest.raises(ModelError):
         parse_label(deep)
+
+
+def test_devices_and_folders_are_not_model_files(tmp_path):
+    with hang_guard(), pytest.raises(ModelError, match="a device"):
+        load("/dev/zero")
+    with pytest.raises(ModelError) as info:
+        load(tmp_path)
+    assert_one_line(str(info.value)) and "cannot read" in str(info.value)
+    with pytest.raises(ModelError, match="no such model file"):
+        load(tmp_path / "missing.toml")
 
 
 def test_deeply_nested_toml_is_one_line(tmp_path):
