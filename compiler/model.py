@@ -79,7 +79,7 @@ class Scheme:
 
     name: str = "scheme"
     origin: str = "scheme"  # the file or place named in messages (printable text)
-    _states: list[str] = field(default_factory=list)
+    _states: dict[str, None] = field(default_factory=dict)  # insertion-ordered set
     _edges: dict[tuple[str, str], Edge] = field(default_factory=dict)
     _params: dict[str, Symbol] = field(default_factory=dict)
     _inputs: dict[str, Symbol] = field(default_factory=dict)
@@ -100,8 +100,7 @@ class Scheme:
         return name
 
     def add_state(self, name: str) -> None:
-        if self._state_name(name) not in self._states:
-            self._states.append(name)
+        self._states.setdefault(self._state_name(name), None)
 
     def add_edge(self, source: str, target: str, rate) -> None:
         self._state_name(source)  # checked before they appear in a message
@@ -119,8 +118,8 @@ class Scheme:
         if _identically_zero(label):
             raise ModelError(f"{where}: the rate {str(rate)!r} has a constant factor 0, so it is zero "
                              "for every value of its symbols; a rate must be positive")
-        self.add_state(source)
-        self.add_state(target)
+        self._states.setdefault(source, None)  # names checked above
+        self._states.setdefault(target, None)
         self._edges[(source, target)] = Edge(source, target, str(rate), label)
 
     def _add_symbol(self, table, kind, name, value, min, max):

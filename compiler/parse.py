@@ -171,6 +171,21 @@ def _clip(source: str, n: int = 80) -> str:
     return repr(source if len(source) <= n else source[:n] + "...")
 
 
+# Successful parses and constant values by input (both immutable and
+# independent of the place named in messages): a 100,000-edge file repeats
+# a handful of rate texts. Bounded; refusals are never cached.
+_MEMO_SIZE = 1 << 16
+_PARSED: dict = {}
+_CONSTANTS: dict = {}
+
+
+def _remember(memo: dict, key, value):
+    if len(memo) >= _MEMO_SIZE:
+        memo.clear()
+    memo[key] = value
+    return value
+
+
 def parse_label(text, *, where: str = "rate") -> Label:
     """Parse one rate label into a tuple tree.
 
@@ -179,6 +194,14 @@ def parse_label(text, *, where: str = "rate") -> Label:
     >>> parse_label("k1*c")
     ('mul', ('sym', 'k1'), ('sym', 'c'))
     """
+    key = (type(text), text) if isinstance(text, (str, int, float)) else None
+    if key in _PARSED:
+        return _PARSED[key]
+    label = _parse_label(text, where)
+    return label if key is None else _remember(_PARSED, key, label)
+
+
+def _parse_label(text, where: str) -> Label:
     if not isinstance(text, (str, int, float)) or isinstance(text, bool):
         raise ModelError(f"{where}: rate must be a string or a number, got {type(text).__name__}")
     if isinstance(text, (int, float)):
@@ -406,6 +429,9 @@ def constant_value(label: Label, where: str = "rate"):
     with symbols, is evaluated with bounded arithmetic and refused with a
     :class:`ModelError` when it is not finite, divides by zero, or lies
     outside [1e-300, 1e300] (zero is allowed inside an expression)."""
+    if label in _CONSTANTS:
+        return _CONSTANTS[label]
+
     def value(node):
         kind = node[0]
         if kind == "num":
@@ -435,7 +461,7 @@ def constant_value(label: Label, where: str = "rate"):
             raise ModelError(f"{where}: the constant {_clip(label_text(node, brief=True))} cannot be evaluated "
                              "in floating point") from None
 
-    return value(label)
+    return _remember(_CONSTANTS, label, value(label))
 
 
 def label_symbols(label: Label) -> list[str]:
