@@ -47,7 +47,8 @@ if TYPE_CHECKING:
 
 MAX_LABEL_LENGTH = 2000
 MAX_NESTING = 60            # parentheses
-MAX_DEPTH = 4 * MAX_NESTING  # nested operations after flattening sums and products
+MAX_DEPTH = 4 * MAX_NESTING  # nested operations (long chains count logarithmically)
+SHORT_CHAIN = 16            # longer chains of + - or * become balanced binary trees
 MAX_NAME_LENGTH = 200
 MAX_CONSTANT_BITS = 4096    # numerator or denominator of a folded constant
 MAX_MODEL_FILE_BYTES = 128 * 2**20
@@ -56,10 +57,9 @@ FUNCTIONS = ("exp", "log", "sqrt")
 
 # A parsed label is a tuple tree:
 #   ("num", Fraction)  ("sym", name)  ("neg", a)  ("exp"|"log"|"sqrt", a)
-#   ("sub"|"div"|"pow", a, b)  ("add"|"mul", a, b, ...)
-# A chain of + and - of three or more terms is one n-ary "add" whose
-# subtracted terms are ("neg", t); a chain of * is one n-ary "mul". Two-term
-# chains keep their binary form ("add", a, b) or ("sub", a, b).
+#   ("add"|"sub"|"mul"|"div"|"pow", a, b)
+# Every operation is binary. A chain longer than SHORT_CHAIN terms
+# (k1 + k2 + ... + k500) is a balanced tree instead of Python's left-deep one.
 Label = tuple
 
 _BINOPS = {ast.Add: "add", ast.Sub: "sub", ast.Mult: "mul", ast.Div: "div", ast.Pow: "pow"}
@@ -313,24 +313,52 @@ class _Converter:
                         "+ - * / ** ( ) and exp, log, sqrt")
 
     def chain(self, node: ast.BinOp, ops: tuple, depth: int) -> Label:
-        """Flatten a left-deep chain of the same kind of operator (``a+b-c+d``);
-        a parenthesised left operand stays one term."""
+        """A chain of the same kind of operator (``a+b-c+d``, ``a*b*c``) read
+        without recursion; a parenthesised left operand stays one term.
+        Chains of up to :data:`SHORT_CHAIN` terms keep Python's left-to-right
+        tree; longer ones become a balanced binary tree (same exact value,
+        logarithmic depth), so flat sums of many terms are accepted."""
         terms = []  # (negated, ast node), right to left
         while isinstance(node, ast.BinOp) and isinstance(node.op, ops):
             terms.append((isinstance(node.op, ast.Sub), node.right))
-            left = node.left
-            if _start(left) != _start(node):  # "(a+b)+c": the user's grouping is kept
-                node = left
+            parent, node = node, node.left
+            if _start(node) != _start(parent):  # "(a+b)+c": the user's grouping is kept
                 break
-            node = left
         terms.append((False, node))
         terms.reverse()
-        kids = [self.convert(t, depth + 1) for _, t in terms]
-        if ops[0] is ast.Mult:
-            return ("mul", *kids)
-        if len(kids) == 2:
-            return ("sub" if terms[1][0] else "add", *kids)
-        return ("add", *[("neg", k) if neg else k for (neg, _), k in zip(terms, kids)])
+        kids = [(neg, self.convert(t, depth + 1)) for neg, t in terms]
+        kind = "mul" if ops[0] is ast.Mult else "add"
+        self.check_constant_part(kind, kids)
+        if len(kids) <= SHORT_CHAIN:
+            neg, out = kids[0]
+            for neg, kid in kids[1:]:
+                out = ("sub" if neg else kind, out, kid)
+            return out
+        neg, out = _balanced(kind, kids)
+        return ("neg", out) if neg else out
+
+    def check_constant_part(self, kind: str, kids: list) -> None:
+        """Folding combines the constant terms of a chain into one: bound it."""
+        consts = [(neg, constant_value(k, self.where)) for neg, k in kids]
+        consts = [-v if neg else v for neg, v in consts if v is not None]
+        if 1 < len(consts) < len(kids):
+            try:
+                _bounded(_apply(kind, consts))
+            except _Refuse as why:
+                self.fail(None, f"the constant terms of this {'sum' if kind == 'add' else 'product'}, combined, "
+                                f"{why}")
+
+
+def _balanced(kind: str, kids: list) -> tuple:
+    """(negated, tree) of a balanced binary tree over signed terms; a
+    negative half is subtracted (a + (-b) is a - b exactly)."""
+    if len(kids) == 1:
+        return kids[0]
+    half = len(kids) // 2
+    (na, a), (nb, b) = _balanced(kind, kids[:half]), _balanced(kind, kids[half:])
+    if kind == "mul" or na == nb:
+        return na, (kind, a, b)
+    return (False, ("sub", a, b)) if nb else (False, ("sub", b, a))
 
 
 # ---------------------------------------------------------------- constants
@@ -445,13 +473,6 @@ def constant_value(label: Label, where: str = "rate"):
         if kind == "div" and xs[1] is not None and xs[1] == 0:
             raise ModelError(f"{where}: {_clip(label_text(node, brief=True))} divides by zero")
         if any(x is None for x in xs):
-            consts = [x for x in xs if x is not None]
-            if kind in ("add", "mul") and len(consts) > 1:
-                try:  # the constant terms of a chain are combined into one by folding
-                    _bounded(_apply(kind, consts))
-                except _Refuse as why:
-                    shown = _clip(label_text(node, brief=True))
-                    raise ModelError(f"{where}: the constant part of {shown} {why}") from None
             return None
         try:
             return _bounded(_apply(kind, xs))

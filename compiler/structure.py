@@ -270,8 +270,6 @@ def _sympy_label(label, symbols: dict):
         return -args[0]
     if kind in ("exp", "log", "sqrt"):
         return getattr(sympy, kind)(args[0])
-    if kind in ("add", "mul"):  # n-ary: a flattened chain of + or *
-        return sympy.Add(*args) if kind == "add" else sympy.Mul(*args)
     a, b = args
     return {"add": lambda: a + b, "sub": lambda: a - b, "mul": lambda: a * b,
             "div": lambda: a / b, "pow": lambda: a ** b}[kind]()

@@ -234,16 +234,21 @@ def test_flat_sums_up_to_the_length_limit():
     text = "+".join(f"k{i}" for i in range(n))
     assert len(text) <= MAX_LABEL_LENGTH
     label = parse_label(text)
-    assert label[0] == "add" and len(label) == n + 1
-    for op, join in (("sub", "-"), ("mul", "*")):
-        chain = join.join(f"k{i}" for i in range(n))
+
+    def depth(node):
+        return 1 + max((depth(k) for k in node[1:] if isinstance(k, tuple)), default=0)
+    assert label[0] == "add" and depth(label) <= 12  # a balanced tree: log2(390) < 9
+    assert len(label) == 3  # every operation stays binary (the label format of the runtime)
+    for op, join in (("sub", "-"), ("mul", "*"), ("mix", "+-")):
+        chain = "".join(f"{join[i % len(join)] if i else ''}k{i}" for i in range(n))
         g = Graph()
         node = lower_label(g, parse_label(chain), {f"k{i}": i for i in range(n)})
         xs = [Fraction(i + 1, 7) for i in range(n)]
         # exact reference computed here with Fractions, left to right
         want = xs[0]
-        for x in xs[1:]:
-            want = want - x if op == "sub" else want * x
+        for i, x in enumerate(xs[1:], 1):
+            minus = op == "sub" or (op == "mix" and i % 2 == 1)
+            want = want * x if op == "mul" else want - x if minus else want + x
         assert evaluate(g, [node], xs)[0] == want
     # compiles and evaluates: p(A) = k0 / (k0 + sum) for the two-state scheme A <-> B
     s = Scheme()
