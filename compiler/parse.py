@@ -174,7 +174,7 @@ def _clip(source: str, n: int = 80) -> str:
 # Successful parses and constant values by input (both immutable and
 # independent of the place named in messages): a 100,000-edge file repeats
 # a handful of rate texts. Bounded; refusals are never cached.
-_MEMO_SIZE = 1 << 16
+_MEMO_SIZE = 4096  # entries (texts up to MAX_LABEL_LENGTH): a few MB at most
 _PARSED: dict = {}
 _CONSTANTS: dict = {}
 
