@@ -20,7 +20,8 @@ import math
 from dataclasses import dataclass, field
 
 from .errors import ModelError
-from .parse import Label, label_symbols, label_text, parse_label
+from .parse import (Label, check_name, constant_value, label_symbols, label_text, lookalike_clash, parse_label,
+                    safe_text)
 
 
 @dataclass(frozen=True)
@@ -40,25 +41,30 @@ class Edge:
     label: Label    # the parsed tuple tree
 
 
-def _check_name(name, what: str, where: str) -> str:
-    if not isinstance(name, str) or not name.strip():
-        raise ModelError(f"{where}: {what} name must be a non-empty string, got {name!r}")
-    if name.startswith("_"):
-        raise ModelError(f"{where}: {what} name {name!r} must not start with an underscore")
-    return name
-
-
 def _check_number(value, what: str, where: str, positive: bool = False):
     if value is None:
         return None
     if isinstance(value, bool) or not isinstance(value, (int, float)):
-        raise ModelError(f"{where}: {what} must be a number, got {value!r}")
-    value = float(value)
+        raise ModelError(f"{where}: {what} must be a number, got {safe_text(repr(value))[:60]}")
+    try:
+        value = float(value)
+    except OverflowError:
+        raise ModelError(f"{where}: {what} is too large for a float64 number") from None
     if not math.isfinite(value):
         raise ModelError(f"{where}: {what} must be finite, got {value!r}")
     if positive and value <= 0:
         raise ModelError(f"{where}: {what} must be positive, got {value!r}")
     return value
+
+
+def _identically_zero(label: Label) -> bool:
+    """A product (or quotient) with a constant factor 0: zero whatever the symbols."""
+    kind = label[0]
+    if kind == "mul":
+        return any(constant_value(k) == 0 or _identically_zero(k) for k in label[1:])
+    if kind in ("div", "neg"):
+        return constant_value(label[1]) == 0 or _identically_zero(label[1])
+    return False
 
 
 @dataclass
@@ -72,37 +78,53 @@ class Scheme:
     """
 
     name: str = "scheme"
-    origin: str = "scheme"
-    _states: list[str] = field(default_factory=list)
+    origin: str = "scheme"  # the file or place named in messages (printable text)
+    _states: dict[str, None] = field(default_factory=dict)  # insertion-ordered set
     _edges: dict[tuple[str, str], Edge] = field(default_factory=dict)
     _params: dict[str, Symbol] = field(default_factory=dict)
     _inputs: dict[str, Symbol] = field(default_factory=dict)
     _observables: dict[str, dict[str, float]] = field(default_factory=dict)
 
     # ------------------------------------------------------------ building
+    def __post_init__(self):
+        self.origin = safe_text(self.origin)
+        check_name(self.name, "model", self.origin)
+
+    def _state_name(self, name) -> str:
+        if name in self._states:
+            return name
+        check_name(name, "state", self.origin)
+        if "->" in name:
+            raise ModelError(f"{self.origin}: state name {name!r} must not contain '->' "
+                             "(it separates the states of an edge)")
+        return name
+
     def add_state(self, name: str) -> None:
-        _check_name(name, "state", self.origin)
-        if name not in self._states:
-            self._states.append(name)
+        self._states.setdefault(self._state_name(name), None)
 
     def add_edge(self, source: str, target: str, rate) -> None:
+        self._state_name(source)  # checked before they appear in a message
+        self._state_name(target)
         where = f"{self.origin}: edge {source}->{target}"
-        _check_name(source, "state", where)
-        _check_name(target, "state", where)
         if source == target:
             raise ModelError(f"{where}: self-loop; a transition must change the state")
         if (source, target) in self._edges:
             raise ModelError(f"{where}: duplicate edge; combine the rates into one label")
         label = parse_label(rate, where=where)
-        self.add_state(source)
-        self.add_state(target)
+        value = constant_value(label, where)
+        if value is not None and not value > 0:
+            raise ModelError(f"{where}: the rate {str(rate)!r} is the constant {float(value):g}; "
+                             "a rate must be positive (remove an edge that never fires)")
+        if _identically_zero(label):
+            raise ModelError(f"{where}: the rate {str(rate)!r} has a constant factor 0, so it is zero "
+                             "for every value of its symbols; a rate must be positive")
+        self._states.setdefault(source, None)  # names checked above
+        self._states.setdefault(target, None)
         self._edges[(source, target)] = Edge(source, target, str(rate), label)
 
     def _add_symbol(self, table, kind, name, value, min, max):
+        check_name(name, kind, self.origin, symbol=True)
         where = f"{self.origin}: {kind} {name!r}"
-        _check_name(name, kind, self.origin)
-        if name in ("exp", "log", "sqrt"):
-            raise ModelError(f"{where}: name is reserved for a function")
         if name in self._params or name in self._inputs:
             raise ModelError(f"{where}: symbol declared twice")
         value = _check_number(value, "value", where)
@@ -121,14 +143,15 @@ class Scheme:
         self._add_symbol(self._inputs, "input", name, value, min, max)
 
     def add_observable(self, name: str, weights: dict) -> None:
+        check_name(name, "observable", self.origin)
         where = f"{self.origin}: observable {name!r}"
-        _check_name(name, "observable", self.origin)
         if name in self._observables:
             raise ModelError(f"{where}: declared twice")
         if not isinstance(weights, dict) or not weights:
             raise ModelError(f"{where}: needs a non-empty map of state name to weight")
         clean = {}
         for state, w in weights.items():
+            check_name(state, "state", where)
             clean[state] = _check_number(w, f"weight of state {state!r}", where)
         self._observables[name] = clean
 
@@ -186,6 +209,10 @@ class Scheme:
         """Refuse empty schemes, undeclared symbols and unknown observable states."""
         if not self._edges:
             raise ModelError(f"{self.origin}: empty scheme; it needs at least one edge")
+        lookalike_clash(self._states, "state", self.origin)
+        used = {s: None for e in self._edges.values() for s in label_symbols(e.label)}
+        lookalike_clash(list(dict.fromkeys([*self.symbols, *used])), "symbol", self.origin)
+        lookalike_clash(self._observables, "observable", self.origin)
         declared = set(self.symbols)
         for e in self._edges.values():
             for s in label_symbols(e.label):

@@ -31,6 +31,16 @@ def _pool() -> ThreadPoolExecutor:
     return _POOL
 
 
+def check_threads(threads) -> None:
+    """``threads`` is None (all cores) or a positive integer; else EvaluationError."""
+    if threads is None:
+        return
+    if isinstance(threads, (bool, np.bool_)) or not isinstance(threads, (int, np.integer)):
+        raise EvaluationError(f"threads must be a positive integer, got {type(threads).__name__}")
+    if threads < 1:
+        raise EvaluationError(f"threads must be a positive integer, got {int(threads)}")
+
+
 class Kernel:
     """A compiled function of rows with a thread-splitting call.
 
@@ -67,6 +77,7 @@ class Kernel:
             out = np.empty((n, self.n_outputs))
         elif out.shape != (n, self.n_outputs) or out.dtype != np.float64 or not out.flags.c_contiguous:
             raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(n, self.n_outputs)}")
+        check_threads(threads)
         threads = threads or (os.cpu_count() or 1)
         threads = max(1, min(threads, n // MIN_ROWS_PER_THREAD)) if self.parallel else 1
         if threads == 1:

@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import EvaluationError
-from .kernel import Kernel
+from .kernel import Kernel, check_threads
 
 
 @dataclass
@@ -94,21 +94,25 @@ class CompiledModel:
 
     # ------------------------------------------------------------ inputs
     def as_array(self, X) -> np.ndarray:
-        """Validate and convert inputs to a C-contiguous (N, n_symbols) float64 array."""
+        """Validate and convert inputs to a C-contiguous (N, n_symbols) float64 array.
+
+        Accepted: real numbers (float or integer arrays, Python numbers). Refused
+        with an :class:`EvaluationError`: complex, boolean, string, object and
+        masked arrays, strings and booleans in a dict, numbers beyond float64."""
         syms = self.symbols
         if isinstance(X, dict):
             unknown = [k for k in X if k not in syms]
             if unknown:
-                raise EvaluationError(f"unknown symbol {unknown[0]!r}; the model's symbols are {', '.join(syms)}")
+                raise EvaluationError(f"unknown symbol {_shown(unknown[0])}; the model's symbols are "
+                                      f"{', '.join(syms)}")
             cols = []
             for s in syms:
                 if s in X:
-                    v = X[s]
+                    v = _real_array(X[s], f"symbol {s!r}")
                 elif s in self.info.defaults:
-                    v = self.info.defaults[s]
+                    v = np.asarray(self.info.defaults[s], dtype=np.float64)
                 else:
                     raise EvaluationError(f"symbol {s!r} has no value: pass it or give it a value in the model")
-                v = np.asarray(v, dtype=np.float64)
                 if v.ndim > 1:
                     raise EvaluationError(f"symbol {s!r}: expected a scalar or a 1-d array, got shape {v.shape}")
                 cols.append(v)
@@ -119,10 +123,7 @@ class CompiledModel:
                 raise EvaluationError(f"arrays of different lengths cannot be broadcast: {shapes}") from None
             arr = np.ascontiguousarray(np.stack(cols, axis=1)) if cols else np.zeros((1, 0))
         else:
-            try:
-                arr = np.asarray(X, dtype=np.float64)
-            except (TypeError, ValueError):
-                raise EvaluationError("inputs must be a float array or a dict of name → value") from None
+            arr = _real_array(X, "inputs")
             if arr.ndim == 1 and arr.shape[0] == len(syms):
                 arr = arr[None, :]
             if arr.ndim != 2 or arr.shape[1] != len(syms):
@@ -191,8 +192,9 @@ class CompiledModel:
         self._require_single()
         arr = self.as_array(X)
         shape = (arr.shape[0], len(self.states))
-        if out is not None and (out.shape != shape or out.dtype != np.float64):
-            raise EvaluationError(f"out must be a float64 array of shape {shape}, got {out.shape} {out.dtype}")
+        check_threads(threads)
+        if out is not None:
+            _check_out(out, shape, arr)
         if self.kernel is None:
             P = self._numeric(arr)
         else:
@@ -397,3 +399,67 @@ class CompiledModel:
         if self._emitter is None:
             raise EvaluationError("this model carries no emitter (loaded without its compiler)")
         return self._emitter(target, out_dir)
+
+
+# ------------------------------------------------------------ argument checks
+
+def _shown(value) -> str:
+    """A short one-line repr for messages (no control characters, no numpy repr)."""
+    if isinstance(value, (bool, np.bool_)):
+        text = type(value).__name__
+    elif isinstance(value, (int, np.integer)):
+        text = repr(int(value))
+    elif isinstance(value, (float, np.floating)):
+        text = repr(float(value))
+    else:
+        text = repr(value) if isinstance(value, str) else type(value).__name__
+    text = text if text.isprintable() else ascii(text)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _real_array(value, what: str) -> np.ndarray:
+    """``value`` as a float64 array, refusing anything that is not plainly real
+    numbers (numpy would otherwise parse strings, drop imaginary parts, ignore
+    masks or raise its own errors)."""
+    if isinstance(value, np.ma.MaskedArray):
+        raise EvaluationError(f"{what}: masked arrays are not accepted; fill or drop the masked entries")
+    if value is None:
+        raise EvaluationError(f"{what}: got None, expected numbers")
+    if isinstance(value, (str, bytes)):
+        raise EvaluationError(f"{what}: got the string {_shown(value)}, expected numbers")
+    if isinstance(value, (bool, np.bool_)):
+        raise EvaluationError(f"{what}: got a boolean, expected a number")
+    try:
+        raw = np.asarray(value)
+    except (TypeError, ValueError, OverflowError):
+        raise EvaluationError(f"{what}: expected numbers (a float array or a dict of name -> value), "
+                              f"got {_shown(value)}") from None
+    kind = raw.dtype.kind
+    if kind in "fiu":
+        return raw.astype(np.float64, copy=False)
+    names = {"b": "booleans", "c": "complex numbers", "U": "strings", "S": "bytes",
+             "M": "dates", "m": "time spans", "V": "structured records"}
+    if kind in names:
+        raise EvaluationError(f"{what}: got {names[kind]}, expected real numbers")
+    try:  # object arrays: Python ints too large for int64, Fractions, None, mixtures
+        if all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
+               for v in raw.flat):
+            return raw.astype(np.float64)
+    except OverflowError:
+        raise EvaluationError(f"{what}: a number is too large for float64") from None
+    raise EvaluationError(f"{what}: expected real numbers, got an array of Python objects")
+
+
+def _check_out(out, shape: tuple, arr: np.ndarray) -> None:
+    """``out`` must be a writable C-contiguous float64 ndarray of ``shape``
+    that does not overlap the inputs."""
+    if not isinstance(out, np.ndarray) or isinstance(out, (np.ma.MaskedArray, np.matrix)):
+        raise EvaluationError(f"out must be a numpy float64 array of shape {shape}, got {type(out).__name__}")
+    if out.dtype != np.float64 or out.shape != shape:
+        raise EvaluationError(f"out must be a float64 array of shape {shape}, got {out.dtype} {out.shape}")
+    if not out.flags.c_contiguous:
+        raise EvaluationError("out must be C-contiguous (np.ascontiguousarray or a fresh np.empty)")
+    if not out.flags.writeable:
+        raise EvaluationError("out is read-only")
+    if np.may_share_memory(out, arr):
+        raise EvaluationError("out must not share memory with the inputs")
