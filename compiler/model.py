@@ -73,7 +73,7 @@ class Scheme:
 
     name: str = "scheme"
     origin: str = "scheme"
-    _states: list[str] = field(default_factory=list)
+    _states: dict[str, None] = field(default_factory=dict)  # ordered set: O(1) membership
     _edges: dict[tuple[str, str], Edge] = field(default_factory=dict)
     _params: dict[str, Symbol] = field(default_factory=dict)
     _inputs: dict[str, Symbol] = field(default_factory=dict)
@@ -83,7 +83,7 @@ class Scheme:
     def add_state(self, name: str) -> None:
         _check_name(name, "state", self.origin)
         if name not in self._states:
-            self._states.append(name)
+            self._states[name] = None
 
     def add_edge(self, source: str, target: str, rate) -> None:
         where = f"{self.origin}: edge {source}->{target}"
