@@ -318,8 +318,12 @@ def _run(argv) -> int:
         status = int(args.handler(args) or 0)
     finally:
         sys.stdout = real
-    real.write(held.getvalue())
-    real.flush()
+    text = held.getvalue()
+    # In pieces: a reader that goes away mid-way (`| head`) shows as a BrokenPipeError
+    # on the next piece (one huge write can end short without an error).
+    for a in range(0, len(text), 1 << 16):
+        real.write(text[a:a + (1 << 16)])
+        real.flush()
     return status
 
 
