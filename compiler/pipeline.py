@@ -131,11 +131,13 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     if method not in METHODS:
         raise ModelError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
 
+    from treeflux.runtime import graph
+
     st = _structure()
     scheme.validate()
     n = len(scheme.states)
-    edges = scheme.edge_list()
-    comps = st.terminal_components(n, edges)
+    edges = scheme.edge_list()           # valid by construction: no re-checking below
+    comps = graph.terminal_components(n, edges)
     reasons: dict = {"states": n, "edges": len(edges), "terminal_components": len(comps)}
     tree_factors, exact = _tree_factors(n, edges, comps)
     if tree_factors is not None:
@@ -148,10 +150,11 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     if not cost.complete:
         reasons["elimination_note"] = (f"more than {MAX_NUMERIC_FLOPS:,} flops: counting stopped there "
                                        f"(the figures are lower bounds)")
-    if not st.is_reversible(n, edges):
+    present = set(edges)
+    if not all((j, i) in present for i, j in edges):
         balance = False  # a one-way edge can never be balanced
     else:
-        db = st.detailed_balance(scheme)
+        db = st.detailed_balance(scheme, validated=(n, edges))
         balance = db["verdict"]
         if "random points" in db["reason"]:
             reasons["detailed_balance_test"] = db["reason"]

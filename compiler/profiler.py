@@ -51,9 +51,11 @@ def profile(scheme: Scheme, *, method: str = "auto") -> dict:
     n = len(scheme.states)
     edges = scheme.edge_list()
     names = scheme.states
-    sccs = st.strongly_connected_components(n, edges)
-    terms = st.terminal_components(n, edges)
-    reversible = st.is_reversible(n, edges)
+    from treeflux.runtime import graph
+    sccs = graph.strongly_connected_components(n, edges)   # edges valid: no re-checking
+    terms = graph.terminal_components(n, edges)
+    present = set(edges)
+    reversible = all((j, i) in present for i, j in edges)
     timings["structure"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     trees, trees_note, trees_estimate = _tree_counts(n, edges, names)

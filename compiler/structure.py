@@ -346,7 +346,7 @@ MAX_SYMBOLIC_CYCLE_LENGTH = 8_000
 
 
 def detailed_balance(scheme, *, max_cycles: int = MAX_SYMBOLIC_CYCLES,
-                     max_length: int = MAX_SYMBOLIC_CYCLE_LENGTH) -> dict:
+                     max_length: int = MAX_SYMBOLIC_CYCLE_LENGTH, validated=None) -> dict:
     """Decide detailed balance of a scheme from its labels (Kolmogorov's criterion).
 
     A chain satisfies detailed balance iff it is reversible (every edge has its
@@ -377,10 +377,11 @@ def detailed_balance(scheme, *, max_cycles: int = MAX_SYMBOLIC_CYCLES,
     "conditional" or None, no conditions or cycles are listed, and the
     reason says so). Labels are converted to SymPy only on cycle edges.
     """
-    scheme.validate()
+    if validated is None:               # (n, edge_list) from a caller that validated already
+        scheme.validate()
+        validated = (len(scheme.states), scheme.edge_list())
+    n, edges = validated
     states = scheme.states
-    edges = scheme.edge_list()
-    n = len(states)
     present = {(e.source, e.target) for e in scheme.edges}
     for e in scheme.edges:
         if (e.target, e.source) not in present:
