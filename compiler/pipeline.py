@@ -447,9 +447,13 @@ def formula(scheme: Scheme, state: str, *, method: str = "elimination", expand: 
     edges = scheme.edge_list()
     i = scheme.index()[state]
     if expand or method == "trees":
-        count = st.tree_counts(n, edges)[i] if n <= MAX_COUNT_STATES else None
+        # the float estimate first: exact big-integer counts only when they are small
+        count = st.estimate_tree_counts(n, edges)[i] if n <= MAX_COUNT_STATES else None
+        if count is not None and count <= 2 * MAX_FORMULA_TREES:
+            count = st.tree_counts(n, edges)[i]
         if count is None or count > MAX_FORMULA_TREES:
-            shown = "too many to count" if count is None else f"{count:,}"
+            shown = ("too many to count" if count is None
+                     else f"{count:,}" if isinstance(count, int) else f"about {count:.3g}")
             raise TooLargeError(f"{scheme.origin}: the expanded formula of {state!r} has {shown} tree terms "
                                 f"(limit {MAX_FORMULA_TREES:,}); ask for the nested form (expand=False)")
         fn, info = build(scheme, method="trees", scale=False)
