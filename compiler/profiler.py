@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import time
 
 from . import ir
@@ -19,21 +20,28 @@ DERIVATIVE_PROFILE_LIMIT = 2_000
 EXACT_COUNT_WORK = 3_000_000
 
 
+def _scientific(log10_value: float) -> str:
+    """A count given by its log10 as text, e.g. 358.2 → "1.58e358"; "0" for -inf."""
+    if log10_value == -math.inf:
+        return "0"
+    exponent = math.floor(log10_value)
+    return f"{10 ** (log10_value - exponent):.3g}e{exponent}"
+
+
 def _tree_counts(n, edges, names) -> tuple[dict | None, str | None, dict | None]:
-    """(exact counts, reason when skipped, float estimates when skipped)."""
-    import math
+    """(exact counts, reason when skipped, estimates as text when skipped)."""
     from . import structure as st
 
     if n > MAX_COUNT_STATES:
         return None, f"exact tree counts are computed up to {MAX_COUNT_STATES} states", None
-    estimate = st.estimate_tree_counts(n, edges)
-    top = max(estimate)
-    digits = math.log10(top) + 1 if 0 < top < math.inf else (1 if top == 0 else 400)
+    logs = st.estimate_tree_counts(n, edges, log10=True)
+    top = max(logs)
+    digits = top + 1 if top > 0 else 1
     flops = _elimination_cost(n, edges, [list(range(n))], budget=EXACT_COUNT_WORK).flops \
         if len(st.terminal_components(n, edges)) == 1 else 0
     work = flops * (1 + digits / 100)
     if work > EXACT_COUNT_WORK:
-        shown = {names[i]: f"{c:.4g}" for i, c in enumerate(estimate)}
+        shown = {names[i]: _scientific(c) for i, c in enumerate(logs)}
         return None, (f"exact tree counts skipped: counts of about {digits:.0f} digits over "
                       f"{flops:,}{'+' if flops > EXACT_COUNT_WORK else ''} elimination steps are beyond the "
                       f"exact-count budget; trees_estimate gives floating estimates"), shown

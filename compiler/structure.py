@@ -254,7 +254,7 @@ def _catch_up(rows, level, i: int, step: int, pivots) -> None:
     level[i] = step
 
 
-def estimate_tree_counts(n: int, edges) -> list[float]:
+def estimate_tree_counts(n: int, edges, *, log10: bool = False) -> list[float]:
     """Spanning in-tree counts per root in floating point (same meaning as
     :func:`tree_counts`), for planning: O(n³) dense linear algebra, no big integers.
 
@@ -262,7 +262,8 @@ def estimate_tree_counts(n: int, edges) -> list[float]:
     ρ_{r₀} = det K^(r₀) (``numpy.linalg.slogdet``) and the others solve
     ρᵀK = 0 with ρ_{r₀} fixed. Relative accuracy is that of a dense LU
     solve (ample for choosing a method; :func:`tree_counts` is exact).
-    Counts beyond the float range come back as ``inf``.
+    Counts beyond the float range come back as ``inf``; with ``log10`` the
+    result is log10 of each count (``-inf`` for 0), which never overflows.
     """
     import numpy as np
 
@@ -271,9 +272,9 @@ def estimate_tree_counts(n: int, edges) -> list[float]:
         return []
     terminal = terminal_components(n, edges)
     if len(terminal) != 1:
-        return [0.0] * n
+        return [-math.inf if log10 else 0.0] * n
     if n == 1:
-        return [1.0]
+        return [0.0 if log10 else 1.0]
     K = np.zeros((n, n))
     for i, j in edges:
         if i != j:
@@ -283,6 +284,14 @@ def estimate_tree_counts(n: int, edges) -> list[float]:
     keep = [s for s in range(n) if s != r0]
     sign, logdet = np.linalg.slogdet(K[np.ix_(keep, keep)])
     x = np.linalg.solve(K[np.ix_(keep, keep)].T, -K[r0, keep])
+    if log10:
+        base = logdet / math.log(10)
+        out = [-math.inf] * n
+        out[r0] = base
+        for s, v in zip(keep, x):
+            if v > 0:
+                out[s] = base + math.log10(float(v))
+        return out
     scale = math.exp(logdet) if logdet < 700 else math.inf
     counts = [0.0] * n
     counts[r0] = scale
