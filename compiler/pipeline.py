@@ -141,7 +141,8 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
     reasons: dict = {"states": n, "edges": len(edges), "terminal_components": len(comps)}
     tree_factors, exact = _tree_factors(n, edges, comps)
     if tree_factors is not None:
-        reasons["tree_factors"] = tree_factors if exact else f"about {tree_factors:.3g}"
+        reasons["tree_factors"] = (tree_factors if exact else f"about {tree_factors:.3g}"
+                                   if tree_factors < float("inf") else "more than 1e308")
     cost = _elimination_cost(n, edges, comps, budget=MAX_NUMERIC_FLOPS)
     flops = cost.flops
     reasons["elimination_flops"] = flops
