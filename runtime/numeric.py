@@ -51,6 +51,7 @@ import numpy as np
 from .errors import EvaluationError
 from .graph import terminal_components
 from .kernel import _pool
+from .progress import progress
 
 LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
 SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
@@ -246,53 +247,56 @@ def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
     # in-neighbour; i muls, i-1 adds, 1 div for back-substitution.
     flops = fill = updates = 0
     limit = budget if budget is not None else float("inf")
-    while heap:
-        item = heapq.heappop(heap)
-        v = item[2]
-        if not alive[v] or item != key[v]:
-            continue
-        fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
-        if fresh != item:
-            key[v] = fresh
-            heapq.heappush(heap, fresh)
-            continue
-        if root is None and v in allowed and remaining_allowed == 1:
-            kept = v               # the last state of the terminal component stays
+    with progress("elimination order", total=n, unit="state") as bar:
+        while heap:
+            item = heapq.heappop(heap)
+            v = item[2]
+            if not alive[v] or item != key[v]:
+                continue
+            fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+            if fresh != item:
+                key[v] = fresh
+                heapq.heappush(heap, fresh)
+                continue
+            if root is None and v in allowed and remaining_allowed == 1:
+                kept = v               # the last state of the terminal component stays
+                alive[v] = False
+                continue
+            # eliminate v
             alive[v] = False
-            continue
-        # eliminate v
-        alive[v] = False
-        order.append(v)
-        if v in allowed:
-            remaining_allowed -= 1
-        ins, outs = in_adj[v], out_adj[v]
-        lo, li = len(outs), len(ins)
-        flops += 2 * lo + 2 * li + (li == 0)
-        for i in ins:
-            out_adj[i].discard(v)
-        for j in outs:
-            in_adj[j].discard(v)
-        for i in ins:
-            oi = out_adj[i]
-            pairs = lo - (i in outs)
-            new = outs - oi
-            new.discard(i)
-            updates += pairs
-            fill += len(new)
-            flops += 2 * pairs - len(new)
-            if new:
-                oi |= new
-                for j in new:
-                    in_adj[j].add(i)
-        touched = ins | outs
-        in_adj[v] = set()
-        out_adj[v] = set()
-        if flops > limit:
-            return EliminationCost(None, flops, fill, updates, False, n, len(src))
-        for u in touched:
-            if u != kept and alive[u]:
-                key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
-                heapq.heappush(heap, key[u])
+            order.append(v)
+            if not len(order) & 255:
+                bar.update(256)
+            if v in allowed:
+                remaining_allowed -= 1
+            ins, outs = in_adj[v], out_adj[v]
+            lo, li = len(outs), len(ins)
+            flops += 2 * lo + 2 * li + (li == 0)
+            for i in ins:
+                out_adj[i].discard(v)
+            for j in outs:
+                in_adj[j].discard(v)
+            for i in ins:
+                oi = out_adj[i]
+                pairs = lo - (i in outs)
+                new = outs - oi
+                new.discard(i)
+                updates += pairs
+                fill += len(new)
+                flops += 2 * pairs - len(new)
+                if new:
+                    oi |= new
+                    for j in new:
+                        in_adj[j].add(i)
+            touched = ins | outs
+            in_adj[v] = set()
+            out_adj[v] = set()
+            if flops > limit:
+                return EliminationCost(None, flops, fill, updates, False, n, len(src))
+            for u in touched:
+                if u != kept and alive[u]:
+                    key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
+                    heapq.heappush(heap, key[u])
     order.append(kept)
     flops += 2 * n                              # Σ x (n-1 adds), 1 div, n muls
     return EliminationCost(order, flops, fill, updates, True, n, len(src))
