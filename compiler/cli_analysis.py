@@ -362,7 +362,9 @@ def guard_sample(args) -> None:
     n_sym, n_states, n_obs = _sizes(args)
     width = n_sym + n_states + n_obs + (8 if args.range is not None else 0)
     # inputs, steady states and the result table in float64; printed rows as text
-    per_sample = 8 * (n_sym + n_states + n_obs) + 8 * width + (0 if args.out else 26 * width)
+    # (about 26 characters a number, held until the command succeeds and copied once
+    # when written: three times the text at the peak)
+    per_sample = 8 * (n_sym + n_states + n_obs) + 8 * width + (0 if args.out else 3 * 26 * width)
     _check_memory(f"--n {args.n:,} samples of {width} columns", args.n * per_sample)
 
 
