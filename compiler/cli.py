@@ -7,6 +7,7 @@ output is one JSON object on stdout.
 from __future__ import annotations
 
 import argparse
+import io
 import json
 import math
 import os
@@ -22,9 +23,22 @@ class UsageError(TreefluxError, ValueError):
     pass
 
 
+_LOADED: dict = {}
+
+
 def load_model(path):
+    """Load a model file; the same unchanged file is parsed once per process
+    (the request guards read it before the command does)."""
     from .parse import load
-    return load(path)
+    try:
+        st = os.stat(path)
+        key = (os.path.realpath(path), st.st_mtime_ns, st.st_size)
+    except (OSError, TypeError, ValueError):
+        return load(path)
+    if key not in _LOADED:
+        _LOADED.clear()
+        _LOADED[key] = load(path)
+    return _LOADED[key]
 
 
 def parse_sets(items) -> dict[str, float]:
@@ -83,6 +97,11 @@ def cmd_profile(args) -> int:
     if prof["trees"]:
         for s, c in prof["trees"].items():
             print(f"  trees rooted at {s}: {c}")
+    if prof.get("trees_note"):
+        print(f"  trees: {prof['trees_note']}")
+    if prof["method"] is None:
+        print(f"  method: none fits: {prof['refused']}")
+        return 0
     print(f"  method: {prof['method']} ({prof['plan'].get('why', 'requested')})")
     print(f"  operations: {prof['operations']}")
     if "note" in prof:
@@ -199,15 +218,27 @@ def cmd_demo(args) -> int:
     return 0
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (no usage block): ``treeflux: error: ...``, exit 2."""
+
+    def error(self, message):
+        raise UsageError(f"{message} (see `{self.prog} --help`)")
+
+
+def _quiet(q) -> None:
+    q.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
 def build_parser() -> argparse.ArgumentParser:
     methods = ["auto", "trees", "elimination", "equilibrium", "numeric"]
-    p = argparse.ArgumentParser(prog="treeflux", description="Closed-form steady states of kinetic schemes, compiled.")
+    p = _Parser(prog="treeflux", description="Closed-form steady states of kinetic schemes, compiled.")
     sub = p.add_subparsers(dest="command", required=True)
 
     q = sub.add_parser("profile", help="structure, tree counts, method choice and operation counts")
     q.add_argument("model")
     q.add_argument("--method", default="auto", choices=methods)
     q.add_argument("--json", action="store_true")
+    _quiet(q)
     q.set_defaults(handler=cmd_profile)
 
     q = sub.add_parser("eval", help="evaluate the steady state at given values")
@@ -216,6 +247,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--method", default="auto", choices=methods)
     q.add_argument("--backend", default="python", choices=["python", "c", "cython", "llvm"])
     q.add_argument("--json", action="store_true")
+    _quiet(q)
     q.set_defaults(handler=cmd_eval)
 
     q = sub.add_parser("formula", help="closed form of the steady state (shared form, or polynomial "
@@ -228,6 +260,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--latex", action="store_true")
     q.add_argument("--expand", action="store_true", help="sums over spanning trees instead of elimination")
     q.add_argument("--method", default="auto", choices=methods)
+    _quiet(q)
     q.set_defaults(handler=cmd_formula)
 
     q = sub.add_parser("compile", help="write standalone source for another codebase")
@@ -235,6 +268,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--target", required=True, choices=["python", "c", "cython", "llvm"])
     q.add_argument("-o", "--out", required=True)
     q.add_argument("--method", default="auto", choices=methods)
+    _quiet(q)
     q.set_defaults(handler=cmd_compile)
 
     q = sub.add_parser("cache", help="inspect or clear the compile cache")
@@ -255,20 +289,105 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def main(argv=None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+def _one_line(text) -> str:
+    """A message as one printable line: control characters and escapes shown, not obeyed."""
+    text = " ".join(str(text).split())
+    return "".join(ch if ch.isprintable() else repr(ch)[1:-1] for ch in text)
+
+
+def _say(message) -> None:
     try:
-        return int(args.handler(args) or 0)
-    except TreefluxError as exc:
-        print(f"treeflux: {exc}", file=sys.stderr)
-        return 2
-    except OSError as exc:
-        print(f"treeflux: {exc}", file=sys.stderr)
-        return 2
-    except RecursionError:
-        print("treeflux: expression too deep to process", file=sys.stderr)
-        return 2
+        sys.stderr.write(f"treeflux: {_one_line(message)}\n")
+        sys.stderr.flush()
+    except (OSError, ValueError):
+        pass
+
+
+def _compile_error(exc) -> str:
+    """A failing or missing C compiler: name it, with its first error line."""
+    cc = os.environ.get("CC", "cc")
+    text = (str(exc).strip().splitlines() or ["no message"])[0]
+    return text if cc in text else f"{text} (compiler: {cc})"
+
+
+def _quiet_stdout() -> None:
+    """After a closed pipe: point stdout at /dev/null so the interpreter's final
+    flush cannot fail again (the recipe of the Python docs, signal module, SIGPIPE)."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):
+        pass
+
+
+def _run(argv) -> int:
+    args = build_parser().parse_args(argv)
+    if getattr(args, "quiet", False) or getattr(args, "json", False):
+        from treeflux.runtime.progress import set_enabled
+        set_enabled(False)
+    guard = getattr(args, "guard", None)
+    if guard is not None:
+        guard(args)
+    # Output is held until the command succeeds: an error or Ctrl-C leaves no partial output.
+    real, held = sys.stdout, io.StringIO()
+    sys.stdout = held
+    try:
+        status = int(args.handler(args) or 0)
+    finally:
+        sys.stdout = real
+    text = held.getvalue()
+    # In pieces: a reader that goes away mid-way (`| head`) shows as a BrokenPipeError
+    # on the next piece (one huge write can end short without an error).
+    for a in range(0, len(text), 1 << 16):
+        real.write(text[a:a + (1 << 16)])
+        real.flush()
+    return status
+
+
+def main(argv=None) -> int:
+    """The command line; every failure is one line on stderr.
+
+    Exit status: 0 success; 2 bad input or a refused request (treeflux's own
+    errors, unreadable files, a failing C compiler, out of memory); 130
+    interrupted (Ctrl-C); 1 an internal error (a bug: set TREEFLUX_DEBUG=1 for
+    the traceback) or a closed output pipe.
+    """
+    from treeflux.runtime.cache import CompileError
+
+    debug = os.environ.get("TREEFLUX_DEBUG", "") not in ("", "0")
+    try:
+        return _run(argv)
+    except KeyboardInterrupt:
+        _say("interrupted")
+        return 130
+    except BrokenPipeError:
+        _quiet_stdout()
+        return 1
+    except SystemExit as exc:          # --help and --version exit through argparse
+        return exc.code if isinstance(exc.code, int) else 0
+    except Exception as exc:           # noqa: BLE001 — every failure becomes one line
+        if debug:
+            raise
+        if isinstance(exc, TreefluxError):
+            _say(exc)
+            return 2
+        if isinstance(exc, CompileError):
+            _say(_compile_error(exc))
+            return 2
+        if isinstance(exc, MemoryError):
+            _say("out of memory: the request needs more memory than is available "
+                 "(ask `treeflux profile` for the size estimates)")
+            return 2
+        if isinstance(exc, RecursionError):
+            _say("expression too deep to process")
+            return 2
+        if isinstance(exc, OSError):
+            where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+            _say(f"{where}{exc.strerror or exc}")
+            return 2
+        _say(f"internal error: {type(exc).__name__}: {exc} (a bug in treeflux; please report it "
+             f"with the command; TREEFLUX_DEBUG=1 shows the traceback)")
+        return 1
 
 
 if __name__ == "__main__":

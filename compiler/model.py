@@ -79,7 +79,7 @@ class Scheme:
 
     name: str = "scheme"
     origin: str = "scheme"  # the file or place named in messages (printable text)
-    _states: dict[str, None] = field(default_factory=dict)  # insertion-ordered set
+    _states: dict[str, None] = field(default_factory=dict)  # insertion-ordered set: O(1) membership
     _edges: dict[tuple[str, str], Edge] = field(default_factory=dict)
     _params: dict[str, Symbol] = field(default_factory=dict)
     _inputs: dict[str, Symbol] = field(default_factory=dict)

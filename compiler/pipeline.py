@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import importlib
 import json
+import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -38,8 +39,12 @@ MAX_SYMBOLIC_OPS = 1_000_000
 MAX_TREE_FACTORS = 4_000_000
 # Exact tree counts (big integers) are computed up to this many states.
 MAX_COUNT_STATES = 400
-# Detailed-balance checks run SymPy per basis cycle; skipped beyond this.
-MAX_BALANCE_CYCLES = 400
+# The planner counts trees exactly (big integers) when the float estimate of
+# the tree factors is below this; beyond, the estimate decides.
+EXACT_TREE_FACTORS = 10 ** 12
+# Looped numeric elimination: flops per parameter set. At ~1 ns a flop that is
+# 0.1 s per set, and its tape (16 bytes per update, half the flops) ~0.8 GB.
+MAX_NUMERIC_FLOPS = 100_000_000
 # formula(expand=True) lists trees only up to this many per state.
 MAX_FORMULA_TREES = 20_000
 # The nested closed form is built only up to this many elimination flops.
@@ -50,7 +55,19 @@ MAX_FORMULA_OPS = 50_000
 class Plan:
     method: str
     reasons: dict = field(default_factory=dict)
-    numeric: object = None  # the EliminationPlan of the whole scheme, when it is one component
+    order: list | None = None  # elimination order of the whole scheme, when it is one component
+    _graph: tuple | None = field(default=None, repr=False)
+    _numeric: object = field(default=None, repr=False)
+
+    @property
+    def numeric(self):
+        """The EliminationPlan (looped numeric path) of the whole scheme, built on
+        first use — planning itself never builds the tape."""
+        if self._numeric is None and self.order is not None and self._graph is not None:
+            from treeflux.runtime.numeric import EliminationPlan
+            n, edges = self._graph
+            self._numeric = EliminationPlan(n, edges, order=self.order)
+        return self._numeric
 
 
 def _structure():
@@ -58,36 +75,100 @@ def _structure():
     return structure
 
 
+def available_memory() -> int | None:
+    """Bytes of memory available to a new allocation (MemAvailable of
+    /proc/meminfo, else free pages × page size), or None when unknown."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def format_bytes(b: float) -> str:
+    for unit, size in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if b >= size:
+            return f"{b / size:.3g} {unit}"
+    return f"{int(b)} bytes"
+
+
+def _tree_factors(n: int, edges, comps):
+    """(Σ over terminal components of trees × (size − 1), exact?) from the
+    float estimate (:func:`structure.estimate_tree_counts`), made exact by
+    big-integer counting when small; None when a component is too large to count."""
+    st = _structure()
+    total, exact = 0, True
+    for comp in comps:
+        k = len(comp)
+        if k == 1:
+            continue
+        if k > MAX_COUNT_STATES:
+            return None, False
+        local = {s: a for a, s in enumerate(comp)}
+        sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
+        estimate = sum(st.estimate_tree_counts(k, sub)) * (k - 1)
+        if estimate <= EXACT_TREE_FACTORS:
+            total += sum(st.tree_counts(k, sub)) * (k - 1)
+        else:
+            total, exact = total + estimate, False
+    return (total if exact else float(total)), exact
+
+
 def plan(scheme: Scheme, method: str = "auto") -> Plan:
-    """Choose (or check) the method, with the numbers that led to the choice."""
+    """Choose (or check) the method, with the numbers that led to the choice.
+
+    Cheap by construction: the elimination cost is counted while the order is
+    chosen and stops past :data:`MAX_NUMERIC_FLOPS`; tree counts are floating
+    estimates (exact only when small); detailed balance is decided
+    symbolically only for a bounded number and length of cycles. A request
+    whose estimate exceeds its limit — or the available memory — is refused
+    here with the estimate and the method that would work.
+    """
     if method not in METHODS:
         raise ModelError(f"unknown method {method!r}; choose one of {', '.join(METHODS)}")
+
+    from treeflux.runtime import graph
 
     st = _structure()
     scheme.validate()
     n = len(scheme.states)
-    edges = scheme.edge_list()
-    comps = st.terminal_components(n, edges)
+    edges = scheme.edge_list()           # valid by construction: no re-checking below
+    comps = graph.terminal_components(n, edges)
     reasons: dict = {"states": n, "edges": len(edges), "terminal_components": len(comps)}
-    tree_factors = None
-    if n <= MAX_COUNT_STATES:
-        counts = st.tree_counts(n, edges)
-        tree_factors = sum(c * (len(comp) - 1) for comp in comps for c in (counts[i] for i in comp))
-        reasons["tree_factors"] = tree_factors
-    flops, fill, whole = _elimination_cost(n, edges, comps)
+    tree_factors, exact = _tree_factors(n, edges, comps)
+    if tree_factors is not None:
+        reasons["tree_factors"] = (tree_factors if exact else f"about {tree_factors:.3g}"
+                                   if tree_factors < float("inf") else "more than 1e308")
+    cost = _elimination_cost(n, edges, comps, budget=MAX_NUMERIC_FLOPS)
+    flops = cost.flops
     reasons["elimination_flops"] = flops
-    reasons["fill"] = fill
-    if not st.is_reversible(n, edges):
+    reasons["fill"] = cost.fill
+    reasons["numeric_tape_bytes"] = cost.tape_bytes
+    if not cost.complete:
+        reasons["elimination_note"] = (f"more than {MAX_NUMERIC_FLOPS:,} flops: counting stopped there "
+                                       f"(the figures are lower bounds)")
+    present = set(edges)
+    if not all((j, i) in present for i, j in edges):
         balance = False  # a one-way edge can never be balanced
-    elif len(edges) // 2 - n + 1 <= MAX_BALANCE_CYCLES:
-        balance = st.detailed_balance(scheme)["verdict"]
     else:
-        # Too many cycles for SymPy: exact test at random rational points.
-        balance = st.balanced_at_random_points(scheme)
-        reasons["detailed_balance_test"] = "exact at random rational points (Schwartz-Zippel)" 
+        db = st.detailed_balance(scheme, validated=(n, edges))
+        balance = db["verdict"]
+        if "random points" in db["reason"]:
+            reasons["detailed_balance_test"] = db["reason"]
     reasons["detailed_balance"] = balance
     reasons["limits"] = {"straight_line_ops": STRAIGHT_LINE_LIMIT, "tree_factors": MAX_TREE_FACTORS,
-                         "symbolic_ops": MAX_SYMBOLIC_OPS}
+                         "symbolic_ops": MAX_SYMBOLIC_OPS, "numeric_flops": MAX_NUMERIC_FLOPS}
+    shown_flops = f"{flops:,}" if cost.complete else f"more than {MAX_NUMERIC_FLOPS:,}"
+    order = cost.order if len(comps) == 1 and len(comps[0]) == n else None
+
+    def made(chosen):
+        return Plan(chosen, reasons, order, (n, edges))
 
     if method == "auto":
         if balance is True and len(comps) == 1 and 3 * n <= STRAIGHT_LINE_LIMIT:
@@ -98,6 +179,10 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             chosen = "elimination"
         else:
             chosen = "numeric"
+        if chosen == "elimination" and flops > MAX_SYMBOLIC_OPS:
+            _refuse_numeric(scheme, cost, balance, symbolic=True)
+        if chosen == "numeric":
+            _check_numeric(scheme, cost, balance)
         reasons["why"] = {
             "equilibrium": "detailed balance holds identically: path products are exact and O(n)",
             "trees": "the tree sums are no larger than the elimination form",
@@ -105,44 +190,78 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             "numeric": f"elimination needs {flops} flops, beyond the straight-line limit "
                        f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination",
         }[chosen]
-        return Plan(chosen, reasons, whole)
+        return made(chosen)
     if method == "trees":
         if tree_factors is None or tree_factors > MAX_TREE_FACTORS:
-            shown = "more than can be counted here" if tree_factors is None else f"{tree_factors:,}"
+            shown = ("more than can be counted here" if tree_factors is None
+                     else f"{tree_factors:,}" if exact else f"about {tree_factors:.3g}")
             raise TooLargeError(f"{scheme.origin}: tree enumeration needs {shown} tree factors "
                                 f"(limit {MAX_TREE_FACTORS:,}); use method='elimination' "
-                                f"({flops:,} flops) or 'numeric'")
+                                f"({shown_flops} flops) or 'numeric'")
     elif method == "elimination":
         if flops > MAX_SYMBOLIC_OPS:
-            raise TooLargeError(f"{scheme.origin}: symbolic elimination needs about {flops:,} operations "
+            raise TooLargeError(f"{scheme.origin}: symbolic elimination needs "
+                                f"{'about ' + shown_flops if cost.complete else shown_flops} operations "
                                 f"(limit {MAX_SYMBOLIC_OPS:,}); use method='numeric'")
     elif method == "equilibrium":
         if balance is not True:
             raise ModelError(f"{scheme.origin}: method 'equilibrium' needs detailed balance to hold "
                              f"identically; it is {balance!r} here (see `treeflux profile`)")
-    elif method == "numeric" and len(comps) > 1:
-        raise ModelError(f"{scheme.origin}: the numeric path needs one terminal component; "
-                         f"this scheme has {len(comps)}")
-    return Plan(method, reasons, whole)
+    elif method == "numeric":
+        if len(comps) > 1:
+            raise ModelError(f"{scheme.origin}: the numeric path needs one terminal component; "
+                             f"this scheme has {len(comps)}")
+        _check_numeric(scheme, cost, balance)
+    return made(method)
 
 
-def _elimination_cost(n: int, edges, comps):
-    """(flops, fill, plan of the whole scheme or None) of elimination with the
-    fill-reducing order, summed over the terminal components."""
-    from treeflux.runtime.numeric import EliminationPlan
+def _check_numeric(scheme: Scheme, cost, balance) -> None:
+    """Refuse the looped numeric path when its tape exceeds the flop limit or memory."""
+    avail = available_memory()
+    if not cost.complete or cost.flops > MAX_NUMERIC_FLOPS:
+        _refuse_numeric(scheme, cost, balance)
+    if avail is not None and cost.tape_bytes > avail // 2:
+        _refuse_numeric(scheme, cost, balance, avail=avail)
 
-    flops = fill = 0
-    whole = None
+
+def _refuse_numeric(scheme: Scheme, cost, balance, *, avail=None, symbolic=False) -> None:
+    more = "" if cost.complete else "more than "
+    alt = ("; detailed balance holds, so method='equilibrium' (path products, O(n)) works"
+           if balance is True else "; no method of treeflux fits this scheme (its elimination fill "
+           "explodes): reduce it, or split it into smaller parts")
+    if symbolic:
+        raise TooLargeError(f"{scheme.origin}: several terminal components and symbolic elimination "
+                            f"needs {more}{cost.flops:,} operations (limit {MAX_SYMBOLIC_OPS:,}){alt}")
+    if avail is not None:
+        raise TooLargeError(f"{scheme.origin}: the looped numeric path needs about "
+                            f"{format_bytes(cost.tape_bytes)} for its elimination tape, more than half "
+                            f"of the {format_bytes(avail)} of memory available{alt}")
+    raise TooLargeError(f"{scheme.origin}: elimination needs {more}{cost.flops:,} flops per parameter set "
+                        f"(a tape of {more}{format_bytes(cost.tape_bytes)}); the looped numeric path "
+                        f"is limited to {MAX_NUMERIC_FLOPS:,}{alt}")
+
+
+def _elimination_cost(n: int, edges, comps, *, budget=None):
+    """Cost of elimination with the fill-reducing order, summed over the terminal
+    components, counted without building a tape; stops past ``budget`` flops.
+
+    Returns a :class:`~treeflux.runtime.numeric.EliminationCost` (``flops``,
+    ``fill``, ``updates``, ``tape_bytes``, ``complete``; ``order`` of the last
+    component counted)."""
+    from treeflux.runtime.numeric import EliminationCost, elimination_cost
+
+    total = EliminationCost([], 0, 0, 0, True, 0, 0)
     for comp in comps:
         local = {s: a for a, s in enumerate(comp)}
         sub = [(local[i], local[j]) for i, j in edges if i in local and j in local]
         if len(comp) > 1:
-            p = EliminationPlan(len(comp), sub)
-            flops += p.flops
-            fill += p.fill
-            if len(comp) == n:
-                whole = p
-    return flops, fill, whole
+            left = None if budget is None else budget - total.flops
+            c = elimination_cost(len(comp), sub, budget=left, terminal=range(len(comp)))
+            total = EliminationCost(c.order, total.flops + c.flops, total.fill + c.fill,
+                                    total.updates + c.updates, c.complete, total.n + c.n, total.m + c.m)
+            if not c.complete:
+                break
+    return total
 
 
 def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
@@ -245,7 +364,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     else:
         t0 = time.perf_counter()
         fn, info = build(scheme, method=chosen.method,
-                         order=chosen.numeric.order if chosen.numeric is not None else None)
+                         order=chosen.order)
         comps = info.components
         timings["frontend"] = time.perf_counter() - t0
         kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
@@ -361,17 +480,22 @@ def formula(scheme: Scheme, state: str, *, method: str = "elimination", expand: 
     edges = scheme.edge_list()
     i = scheme.index()[state]
     if expand or method == "trees":
-        count = st.tree_counts(n, edges)[i] if n <= MAX_COUNT_STATES else None
+        # the float estimate first: exact big-integer counts only when they are small
+        count = st.estimate_tree_counts(n, edges)[i] if n <= MAX_COUNT_STATES else None
+        if count is not None and count <= 2 * MAX_FORMULA_TREES:
+            count = st.tree_counts(n, edges)[i]
         if count is None or count > MAX_FORMULA_TREES:
-            shown = "too many to count" if count is None else f"{count:,}"
+            shown = ("too many to count" if count is None
+                     else f"{count:,}" if isinstance(count, int) else f"about {count:.3g}")
             raise TooLargeError(f"{scheme.origin}: the expanded formula of {state!r} has {shown} tree terms "
                                 f"(limit {MAX_FORMULA_TREES:,}); ask for the nested form (expand=False)")
         fn, info = build(scheme, method="trees", scale=False)
         node = fn.group("rho")[i]
         return ir.to_sympy(fn.graph, [node], scheme.symbols)[0]
-    flops = _elimination_cost(n, edges, st.terminal_components(n, edges))[0]
+    cost = _elimination_cost(n, edges, st.terminal_components(n, edges), budget=MAX_SYMBOLIC_OPS)
+    flops = cost.flops
     if flops > MAX_FORMULA_OPS:
-        raise TooLargeError(f"{scheme.origin}: the nested closed form needs about {flops:,} operations "
+        raise TooLargeError(f"{scheme.origin}: the nested closed form needs {'about' if cost.complete else 'more than'} {flops:,} operations "
                             f"(limit {MAX_FORMULA_OPS:,}); evaluate the scheme numerically instead")
     fn, info = build(scheme, method="elimination")
     rho = fn.group("rho")

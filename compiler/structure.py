@@ -29,6 +29,7 @@ References
 from __future__ import annotations
 
 import heapq
+import math
 from collections import Counter
 
 from treeflux.runtime import graph
@@ -253,6 +254,52 @@ def _catch_up(rows, level, i: int, step: int, pivots) -> None:
     level[i] = step
 
 
+def estimate_tree_counts(n: int, edges, *, log10: bool = False) -> list[float]:
+    """Spanning in-tree counts per root in floating point (same meaning as
+    :func:`tree_counts`), for planning: O(n³) dense linear algebra, no big integers.
+
+    With one terminal component T, ρ = adj-kernel of K (:func:`tree_counts`):
+    ρ_{r₀} = det K^(r₀) (``numpy.linalg.slogdet``) and the others solve
+    ρᵀK = 0 with ρ_{r₀} fixed. Relative accuracy is that of a dense LU
+    solve (ample for choosing a method; :func:`tree_counts` is exact).
+    Counts beyond the float range come back as ``inf``; with ``log10`` the
+    result is log10 of each count (``-inf`` for 0), which never overflows.
+    """
+    import numpy as np
+
+    edges = _checked(n, edges)
+    if n == 0:
+        return []
+    terminal = terminal_components(n, edges)
+    if len(terminal) != 1:
+        return [-math.inf if log10 else 0.0] * n
+    if n == 1:
+        return [0.0 if log10 else 1.0]
+    K = np.zeros((n, n))
+    for i, j in edges:
+        if i != j:
+            K[i, i] += 1.0
+            K[i, j] -= 1.0
+    r0 = max(terminal[0], key=lambda s: (K[s, s], -s))
+    keep = [s for s in range(n) if s != r0]
+    sign, logdet = np.linalg.slogdet(K[np.ix_(keep, keep)])
+    x = np.linalg.solve(K[np.ix_(keep, keep)].T, -K[r0, keep])
+    if log10:
+        base = logdet / math.log(10)
+        out = [-math.inf] * n
+        out[r0] = base
+        for s, v in zip(keep, x):
+            if v > 0:
+                out[s] = base + math.log10(float(v))
+        return out
+    scale = math.exp(logdet) if logdet < 700 else math.inf
+    counts = [0.0] * n
+    counts[r0] = scale
+    for s, v in zip(keep, x):
+        counts[s] = max(float(v), 0.0) * scale if scale != math.inf or v > 0 else 0.0
+    return counts
+
+
 # ------------------------------------------------------------------ schemes
 
 def _sympy_label(label, symbols: dict):
@@ -301,7 +348,14 @@ def _ratio_status(fwd, rev):
     return "holds" if same else "fails"
 
 
-def detailed_balance(scheme) -> dict:
+# Kolmogorov's criterion is decided symbolically (SymPy) up to this many basis
+# cycles of at most this total length; beyond, exactly at random points.
+MAX_SYMBOLIC_CYCLES = 400
+MAX_SYMBOLIC_CYCLE_LENGTH = 8_000
+
+
+def detailed_balance(scheme, *, max_cycles: int = MAX_SYMBOLIC_CYCLES,
+                     max_length: int = MAX_SYMBOLIC_CYCLE_LENGTH, validated=None) -> dict:
     """Decide detailed balance of a scheme from its labels (Kolmogorov's criterion).
 
     A chain satisfies detailed balance iff it is reversible (every edge has its
@@ -324,27 +378,57 @@ def detailed_balance(scheme) -> dict:
         ``cycles``: every basis cycle as a list of state names, forward
         direction in list order, closing back to the first. ``reason``: one
         line explaining the verdict.
+
+    Bounded: a reversible scheme without cycles balances (no SymPy). With
+    more than ``max_cycles`` basis cycles, or cycles longer than
+    ``max_length`` in total, the criterion is tested exactly at random
+    points instead (:func:`balanced_at_random_points`; the verdict is True,
+    "conditional" or None, no conditions or cycles are listed, and the
+    reason says so). Labels are converted to SymPy only on cycle edges.
     """
-    import sympy
-    scheme.validate()
+    if validated is None:               # (n, edge_list) from a caller that validated already
+        scheme.validate()
+        validated = (len(scheme.states), scheme.edge_list())
+    n, edges = validated
     states = scheme.states
-    edges = scheme.edge_list()
-    n = len(states)
     present = {(e.source, e.target) for e in scheme.edges}
     for e in scheme.edges:
         if (e.target, e.source) not in present:
             return {"verdict": False, "conditions": [], "cycles": [],
                     "reason": f"not reversible: edge {e.source}->{e.target} has no reverse edge"}
+    skeleton = {(min(i, j), max(i, j)) for i, j in edges}
+    n_cycles = len(skeleton) - n + _connected_parts(n, skeleton)
+    if n_cycles == 0:
+        return {"verdict": True, "conditions": [], "cycles": [],
+                "reason": "reversible and without cycles: detailed balance always holds"}
+    cycles = cycle_basis(n, edges) if n_cycles <= max_cycles else None
+    length = sum(len(c) for c in cycles) if cycles is not None else None
+    if cycles is None or length > max_length:
+        verdict = balanced_at_random_points(scheme)
+        size = (f"{n_cycles:,} basis cycles" if cycles is None
+                else f"basis cycles of total length {length:,}")
+        how = ({True: "holds", "conditional": "fails at a random point, so it holds only conditionally",
+                None: "could not be tested (a label is not a rational function)"}[verdict])
+        return {"verdict": verdict, "conditions": [], "cycles": [],
+                "reason": f"{size}: beyond the symbolic limit ({max_cycles:,} cycles, total length "
+                          f"{max_length:,}); tested exactly at random points modulo a prime "
+                          f"(Schwartz-Zippel): {how}"}
+    import sympy
     symbols: dict = {}
-    label = {}
-    for (i, j), e in zip(edges, scheme.edges):
-        label[(i, j)] = _sympy_label(e.label, symbols)
+    by_pair = {(i, j): e for (i, j), e in zip(edges, scheme.edges)}
+    label: dict = {}
+
+    def lab(i, j):
+        if (i, j) not in label:
+            label[(i, j)] = _sympy_label(by_pair[(i, j)].label, symbols)
+        return label[(i, j)]
+
     cycles = cycle_basis(n, edges)
     conditions = []
     for cyc in cycles:
         ring = list(zip(cyc, cyc[1:] + cyc[:1]))
-        fwd = sympy.Mul(*[label[(a, b)] for a, b in ring])
-        rev = sympy.Mul(*[label[(b, a)] for a, b in ring])
+        fwd = sympy.Mul(*[lab(a, b) for a, b in ring])
+        rev = sympy.Mul(*[lab(b, a) for a, b in ring])
         status = _ratio_status(fwd, rev)
         names = [states[s] for s in cyc]
         if status == "fails":
@@ -368,20 +452,50 @@ def detailed_balance(scheme) -> dict:
     return {"verdict": True, "conditions": [], "cycles": named, "reason": reason}
 
 
+# A Mersenne prime: arithmetic modulo it stays on machine-size integers.
+_PRIME = 2 ** 61 - 1
+
+
+def _connected_parts(n: int, pairs) -> int:
+    """Connected parts of an undirected graph (union-find with path halving)."""
+    parent = list(range(n))
+
+    def find(a):
+        while parent[a] != a:
+            parent[a] = parent[parent[a]]
+            a = parent[a]
+        return a
+
+    parts = n
+    for i, j in pairs:
+        a, b = find(i), find(j)
+        if a != b:
+            parent[a] = b
+            parts -= 1
+    return parts
+
+
 def balanced_at_random_points(scheme, *, points: int = 2, seed: int = 0):
-    """Detailed balance tested exactly at random rational points (large schemes).
+    """Detailed balance tested exactly at random points (large schemes), in O(n + m).
 
     The symbolic test costs a SymPy reduction per basis cycle; for schemes
     with thousands of cycles this test instead evaluates the labels exactly
-    (Fractions) at random positive integer points, builds the equilibrium
-    weights x along a breadth-first tree (x_b = x_a l(a->b)/l(b->a)) and checks
-    x_i l(i->j) = x_j l(j->i) on every other reversible pair. A balance that
-    does not hold identically is a nonzero rational function of degree d and
-    vanishes at a random point of a set of size S with probability at most
-    d/S (Schwartz, J. ACM 27 (1980) 701-717; Zippel 1979): with S = 2**31 a
-    wrong True is practically excluded. Returns True, "conditional" (fails at
-    some point) or None when a label is not a rational function (exp, log,
-    sqrt, fractional powers) or the scheme is not reversible.
+    (Fractions) at random positive integer points, reduces them modulo the
+    prime P = 2^61 - 1, builds the equilibrium weights x along a
+    breadth-first tree (x_b = x_a l(a->b)/l(b->a) mod P) and checks
+    x_i l(i->j) = x_j l(j->i) mod P on every reversible pair. Working modulo
+    P keeps every number to 61 bits, where exact rationals would grow by 31
+    bits per step along a long path (a 50,000-state chain).
+
+    A balance that holds identically holds at every point and modulo P (a
+    point where some rate is 0 modulo P is skipped). One that does not hold
+    is a nonzero rational function of degree d; it vanishes at a random
+    point of a set of size S with probability at most d/S (Schwartz, J. ACM
+    27 (1980) 701-717; Zippel 1979), and its nonzero value is divisible by P
+    with probability about 1/P: a wrong True is practically excluded.
+    Returns True, "conditional" (fails at some point) or None when a label is
+    not a rational function (exp, log, sqrt, fractional powers) or the scheme
+    is not reversible.
     """
     import random
     from fractions import Fraction
@@ -399,20 +513,35 @@ def balanced_at_random_points(scheme, *, points: int = 2, seed: int = 0):
     rng = random.Random(seed)
     index = {e: k for k, e in enumerate(edges)}
     tree = graph.breadth_first_parents(n, edges)
-    for _ in range(points):
+    done = tries = 0
+    while done < points and tries < 4 * points:
+        tries += 1
         values = [Fraction(rng.randint(1, 2 ** 31)) for _ in scheme.symbols]
         try:
-            rate = evaluate(g, nodes, values, "exact")
-        except (TypeError, ValueError, ZeroDivisionError):
+            exact = evaluate(g, nodes, values, "exact")
+        except (TypeError, ValueError, ZeroDivisionError, OverflowError):
             return None
-        x = [None] * n
+        rate = []
+        for v in exact:
+            if isinstance(v, int):
+                v = Fraction(v)
+            if not isinstance(v, Fraction):
+                return None
+            num, den = v.numerator % _PRIME, v.denominator % _PRIME
+            if num == 0 or den == 0:
+                break
+            rate.append(num * pow(den, -1, _PRIME) % _PRIME)
+        if len(rate) != len(exact):
+            continue                       # a rate vanishes modulo P: draw another point
+        done += 1
+        x = [0] * n
         for v in tree.order:
             a = tree.parent[v]
-            x[v] = Fraction(1) if a < 0 else x[a] * rate[index[(a, v)]] / rate[index[(v, a)]]
+            x[v] = 1 if a < 0 else x[a] * rate[index[(a, v)]] % _PRIME * pow(rate[index[(v, a)]], -1, _PRIME) % _PRIME
         for (i, j), k in index.items():
-            if x[i] * rate[k] != x[j] * rate[index[(j, i)]]:
+            if x[i] * rate[k] % _PRIME != x[j] * rate[index[(j, i)]] % _PRIME:
                 return "conditional"
-    return True
+    return True if done else None
 
 
 def structure_profile(scheme) -> dict:

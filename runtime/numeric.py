@@ -51,6 +51,7 @@ import numpy as np
 from .errors import EvaluationError
 from .graph import terminal_components
 from .kernel import _pool
+from .progress import progress
 
 LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
 SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
@@ -157,8 +158,62 @@ def elimination_order(n, edges, *, root=None) -> list[int]:
     [0, 1, 2]
     """
     n, src, dst = _check_graph(n, edges)
+    return _greedy(n, src, dst, root, None).order
+
+
+class EliminationCost:
+    """The size of subtraction-free elimination under the greedy order, counted
+    while the order is chosen (no tape is built): see :func:`elimination_cost`.
+
+    Attributes
+    ----------
+    order : list of int or None
+        The elimination order (as :func:`elimination_order`); None when the
+        count stopped at the budget.
+    flops : int
+        Additions, multiplications and divisions per parameter set, exactly as
+        :class:`EliminationPlan` counts them; a lower bound when not ``complete``.
+    fill : int
+        Edges created by the elimination (lower bound when not complete).
+    updates : int
+        Update triples V[dst] += V[a]·V[b] of the tape (lower bound when not complete).
+    complete : bool
+        False when counting stopped because ``flops`` passed the budget.
+    """
+
+    __slots__ = ("order", "flops", "fill", "updates", "complete", "n", "m")
+
+    def __init__(self, order, flops, fill, updates, complete, n, m):
+        self.order, self.flops, self.fill, self.updates = order, flops, fill, updates
+        self.complete, self.n, self.m = complete, n, m
+
+    @property
+    def tape_bytes(self) -> int:
+        """Memory the looped numeric path's tape takes (lower bound when not complete):
+        12 bytes per update triple plus 4 per grid entry while it is built, and
+        index arrays of 4–8 bytes per slot and pivot."""
+        return 16 * self.updates + 24 * (self.m + self.fill) + 40 * self.n
+
+
+def elimination_cost(n, edges, *, root=None, budget=None, terminal=None) -> EliminationCost:
+    """Flops, fill and tape size of elimination under the greedy order, in one pass.
+
+    The counts are taken while :func:`elimination_order` chooses the order
+    (same order, same numbers as :class:`EliminationPlan`), so no tape is
+    built. With ``budget`` (flops) the count stops as soon as it passes the
+    budget: ``complete`` is then False and the numbers are lower bounds.
+    The greedy ordering does set work proportional to the fill it creates,
+    so a budget also bounds its time on graphs whose fill explodes.
+    ``terminal``: the states of the unique terminal strong component, when the
+    caller has them already (saves recomputing the components).
+    """
+    n, src, dst = _check_graph(n, edges)
+    return _greedy(n, src, dst, root, budget, terminal)
+
+
+def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
     out_adj, in_adj = _adjacency(n, src, dst)
-    allowed = _terminal_states(n, out_adj)
+    allowed = set(terminal) if terminal is not None else _terminal_states(n, out_adj)
     if root is not None:
         root = int(root)
         if not 0 <= root < n:
@@ -187,47 +242,64 @@ def elimination_order(n, edges, *, root=None) -> list[int]:
     heapq.heapify(heap)
     order = []
     kept = root
-    while heap:
-        item = heapq.heappop(heap)
-        v = item[2]
-        if not alive[v] or item != key[v]:
-            continue
-        fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
-        if fresh != item:
-            key[v] = fresh
-            heapq.heappush(heap, fresh)
-            continue
-        if root is None and v in allowed and remaining_allowed == 1:
-            kept = v               # the last state of the terminal component stays
+    # counts as in _symbolic: per pivot (o outs, i ins) o-1 adds, o muls, 1 div for
+    # the scaled exits; o - [i in outs] muls and as many adds less the fresh edges per
+    # in-neighbour; i muls, i-1 adds, 1 div for back-substitution.
+    flops = fill = updates = 0
+    limit = budget if budget is not None else float("inf")
+    with progress("elimination order", total=n, unit="state") as bar:
+        while heap:
+            item = heapq.heappop(heap)
+            v = item[2]
+            if not alive[v] or item != key[v]:
+                continue
+            fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+            if fresh != item:
+                key[v] = fresh
+                heapq.heappush(heap, fresh)
+                continue
+            if root is None and v in allowed and remaining_allowed == 1:
+                kept = v               # the last state of the terminal component stays
+                alive[v] = False
+                continue
+            # eliminate v
             alive[v] = False
-            continue
-        # eliminate v
-        alive[v] = False
-        order.append(v)
-        if v in allowed:
-            remaining_allowed -= 1
-        ins, outs = in_adj[v], out_adj[v]
-        for i in ins:
-            out_adj[i].discard(v)
-        for j in outs:
-            in_adj[j].discard(v)
-        for i in ins:
-            oi = out_adj[i]
-            new = outs - oi
-            new.discard(i)
-            if new:
-                oi |= new
-                for j in new:
-                    in_adj[j].add(i)
-        touched = ins | outs
-        in_adj[v] = set()
-        out_adj[v] = set()
-        for u in touched:
-            if u != kept and alive[u]:
-                key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
-                heapq.heappush(heap, key[u])
+            order.append(v)
+            if not len(order) & 255:
+                bar.update(256)
+            if v in allowed:
+                remaining_allowed -= 1
+            ins, outs = in_adj[v], out_adj[v]
+            lo, li = len(outs), len(ins)
+            flops += 2 * lo + 2 * li + (li == 0)
+            for i in ins:
+                out_adj[i].discard(v)
+            for j in outs:
+                in_adj[j].discard(v)
+            for i in ins:
+                oi = out_adj[i]
+                pairs = lo - (i in outs)
+                new = outs - oi
+                new.discard(i)
+                updates += pairs
+                fill += len(new)
+                flops += 2 * pairs - len(new)
+                if new:
+                    oi |= new
+                    for j in new:
+                        in_adj[j].add(i)
+            touched = ins | outs
+            in_adj[v] = set()
+            out_adj[v] = set()
+            if flops > limit:
+                return EliminationCost(None, flops, fill, updates, False, n, len(src))
+            for u in touched:
+                if u != kept and alive[u]:
+                    key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
+                    heapq.heappush(heap, key[u])
     order.append(kept)
-    return order
+    flops += 2 * n                              # Σ x (n-1 adds), 1 div, n muls
+    return EliminationCost(order, flops, fill, updates, True, n, len(src))
 
 
 def _symbolic(n, src, dst, order):

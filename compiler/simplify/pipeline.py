@@ -13,6 +13,8 @@ introduces no subtraction.
 
 from __future__ import annotations
 
+from treeflux.runtime.progress import progress
+
 from ..ir import Function, compact, count_ops, verify
 from .canonical import canonical
 from .factor import factor
@@ -52,15 +54,17 @@ def simplify(fn: Function, *, report=None, check: bool = False, passes=None) -> 
             raise ValueError(f"unknown simplifier pass {unknown[0]!r}; choose from {', '.join(names)}")
     if check:
         verify(fn)
-    for name, run in PASSES:
-        if passes is not None and name not in passes:
-            continue
-        before = count_ops(fn.graph, value_roots(fn)) if isinstance(report, list) else None
-        fn = run(fn)
-        if check:
-            verify(fn)
-        if isinstance(report, list):
-            report.append({"pass": name, "before": before, "after": count_ops(fn.graph, value_roots(fn))})
+    chosen = [(name, run) for name, run in PASSES if passes is None or name in passes]
+    with progress("simplification", total=len(chosen), unit="pass") as bar:
+        for name, run in chosen:
+            bar.set_postfix_str(name)
+            before = count_ops(fn.graph, value_roots(fn)) if isinstance(report, list) else None
+            fn = run(fn)
+            if check:
+                verify(fn)
+            if isinstance(report, list):
+                report.append({"pass": name, "before": before, "after": count_ops(fn.graph, value_roots(fn))})
+            bar.update(1)
     if passes is not None and "compact" not in passes:
         fn = compact(fn)
     return fn
