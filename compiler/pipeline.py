@@ -333,7 +333,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     scheme.validate()
     label_fn = _label_function(scheme)
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
-    options = {"jacobian": jacobian, "log_jacobian": log_jacobian, "jacobian_form": "log",
+    options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
                "input_derivatives": input_derivatives, "name": name}
     if jacobian:
         options["jacobian_form"] = "log"  # compiled derivatives are log-form (runtime divides)
