@@ -368,11 +368,11 @@ def main(argv=None) -> int:
     except Exception as exc:           # noqa: BLE001 — every failure becomes one line
         if debug:
             raise
+        if isinstance(exc, CompileError):  # a TreefluxError too: name the compiler first
+            _say(_compile_error(exc))
+            return 2
         if isinstance(exc, TreefluxError):
             _say(exc)
-            return 2
-        if isinstance(exc, CompileError):
-            _say(_compile_error(exc))
             return 2
         if isinstance(exc, MemoryError):
             _say("out of memory: the request needs more memory than is available "

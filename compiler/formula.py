@@ -42,12 +42,23 @@ MAX_SHARED_OPS = 60_000
 # ---------------------------------------------------------------- substitution
 
 def _subst(label, values: dict):
+    """The label with the given symbols replaced by numbers, zeros folded away
+    (x·0 = 0, x + 0 = x, 0/x = 0), so a rate that vanishes becomes ("num", 0)."""
     op = label[0]
     if op == "sym":
         return ("num", values[label[1]]) if label[1] in values else label
     if op == "num":
         return label
-    return (op, *(_subst(a, values) for a in label[1:]))
+    args = [_subst(a, values) for a in label[1:]]
+    zero = [a[0] == "num" and a[1] == 0 for a in args]
+    if op == "mul" and any(zero):
+        return ("num", Fraction(0))
+    if op == "div" and zero[0]:
+        return ("num", Fraction(0))
+    if op == "add" and any(zero):
+        rest = [a for a, z in zip(args, zero) if not z]
+        return rest[0] if len(rest) == 1 else ("num", Fraction(0)) if not rest else (op, *rest)
+    return (op, *args)
 
 
 def substituted(scheme: Scheme, sets: dict) -> Scheme:
