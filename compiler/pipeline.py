@@ -9,8 +9,10 @@ and refuses requests that would exhaust memory or time, before any work.
 
 from __future__ import annotations
 
+import hashlib
 import importlib
 import json
+import pickle
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -205,12 +207,15 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
     options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
                "input_derivatives": input_derivatives, "name": name}
+    # a snapshot of the scheme as data (later edits to it do not change this model)
+    recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL),
+                              {**options, "method": method, "backend": backend, "cache": cache}))
     key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
     hit = artifacts.load(key) if cache else None
     if hit is not None:
         kernel, info, profile = hit
         profile["cache"] = "hit"
-        return _model(scheme, info, kernel, label_kernel, profile)
+        return _model(scheme, info, kernel, label_kernel, profile, recipe)
     t0 = time.perf_counter()
     chosen = plan(scheme, method)
     timings["plan"] = time.perf_counter() - t0
@@ -269,18 +274,37 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
         artifacts.store(key, kernel, info, profile)
-    model = _model(scheme, info, kernel, label_kernel, profile)
+    model = _model(scheme, info, kernel, label_kernel, profile, recipe)
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
 
 
-def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
+def _model(scheme, info: ModelInfo, kernel, label_kernel, profile, recipe) -> CompiledModel:
     method = info.method
-    return CompiledModel(info, kernel, label_kernel,
-                         formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
-                         emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
-                         profile=profile)
+    model = CompiledModel(info, kernel, label_kernel,
+                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
+                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
+                          profile=profile)
+    model.recipe = recipe  # how another process rebuilds it: CompiledModel pickles as this
+    return model
+
+
+_REBUILT: dict = {}  # models rebuilt in this process by unpickling, by content
+
+
+def rebuild_model(scheme: bytes, options: dict) -> CompiledModel:
+    """Compile a pickled scheme with ``options`` (the keywords of :func:`compile_scheme`)
+    once per process: what an unpickled CompiledModel becomes (Dask workers). The
+    scheme travels as data (states, edges, parsed labels); the compile goes through
+    the cache."""
+    key = hashlib.sha256(scheme + json.dumps(options, sort_keys=True).encode()).hexdigest()
+    model = _REBUILT.get(key)
+    if model is None:
+        while len(_REBUILT) >= 16:
+            _REBUILT.pop(next(iter(_REBUILT)))
+        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **options)
+    return model
 
 
 def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, along: str | None,
