@@ -59,6 +59,8 @@ BLOCK_FLOATS = 2_000_000
 # Resident memory of one worker process with numpy, dask and treeflux loaded
 # (measured about 110 MB here; rounded up).
 WORKER_BYTES = 200 * 2 ** 20
+# How long to try reaching a scheduler given by address.
+CONNECT_TIMEOUT = "10s"
 
 
 def sample_ranges(model, *, values=None, decades: float = DEFAULT_DECADES) -> dict:
@@ -308,9 +310,11 @@ def _distributed():
 
 @contextmanager
 def _sigint_ignored():
-    """Worker processes started inside this block inherit an ignored SIGINT:
-    Ctrl-C reaches this process alone, which then closes the cluster (workers
-    would otherwise each print a traceback). Only possible on the main thread."""
+    """Ignore SIGINT while a cluster starts: the worker processes started
+    meanwhile inherit the ignored signal, so Ctrl-C at a terminal (sent to the
+    whole process group) reaches this process alone, which then closes the
+    cluster; workers would otherwise each print a traceback. (A Ctrl-C in
+    the second or two of the start is lost.) Main thread only."""
     if threading.current_thread() is not threading.main_thread():
         yield
         return
@@ -326,21 +330,23 @@ def local_cluster(workers: int):
     """A Client on a new LocalCluster of ``workers`` single-threaded processes,
     closed (workers stopped) when the block ends, however it ends."""
     dd = _distributed()
-    with _sigint_ignored():
-        cluster = dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                  dashboard_address=":0", silence_logs=logging.CRITICAL)
+    cluster = None
     try:
+        with _sigint_ignored():
+            cluster = dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                      dashboard_address=":0", silence_logs=logging.CRITICAL)
         with dd.Client(cluster) as client:
             yield client
     finally:
-        cluster.close()
+        if cluster is not None:
+            cluster.close()
 
 
 @contextmanager
 def _connect(address: str):
     dd = _distributed()
     try:
-        client = dd.Client(address, timeout="10s")
+        client = dd.Client(address, timeout=CONNECT_TIMEOUT)
     except (OSError, TimeoutError, ValueError) as exc:
         raise EvaluationError(f"cannot reach the Dask scheduler at {address}: "
                               f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None
