@@ -14,9 +14,11 @@ blocks depend only on the model, the request and ``n`` — never on where they
 run — and each block draws its own rows from the one seeded stream (PCG64,
 advanced to the block's first draw), so the table is the same, bit for bit,
 whether the blocks run in this process, on a local Dask cluster
-(``workers``) or on an existing one (``client``, ``scheduler``). A block is a
-small task (the model pickles as its recipe, the sweep as a few numbers), so
-a worker that dies loses nothing: the scheduler runs its blocks again.
+(``workers``; blocks run here while it starts) or on an existing one
+(``client``, ``scheduler``). A block is a small task (the model pickles as its
+recipe, the sweep as a few numbers), so a worker that dies loses nothing: the
+scheduler runs its blocks again. Blocks come back in order whatever order
+they finish in.
 """
 
 from __future__ import annotations
@@ -280,8 +282,7 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
             with _connect(scheduler) as c:
                 parts = _on_cluster(c, model, sweep, blocks, bar)
         elif workers is not None and workers > 1:
-            with local_cluster(workers) as c:
-                parts = _on_cluster(c, model, sweep, blocks, bar)
+            parts = _on_new_cluster(workers, model, sweep, blocks, bar)
         else:
             parts = []
             for a, b in blocks:
@@ -314,7 +315,8 @@ def _sigint_ignored():
     meanwhile inherit the ignored signal, so Ctrl-C at a terminal (sent to the
     whole process group) reaches this process alone, which then closes the
     cluster; workers would otherwise each print a traceback. (A Ctrl-C in
-    the second or two of the start is lost.) Main thread only."""
+    the second or two of the start is lost.) Main thread only; a cluster
+    started from another thread keeps the default."""
     if threading.current_thread() is not threading.main_thread():
         yield
         return
@@ -325,21 +327,44 @@ def _sigint_ignored():
         signal.signal(signal.SIGINT, previous)
 
 
-@contextmanager
-def local_cluster(workers: int):
-    """A Client on a new LocalCluster of ``workers`` single-threaded processes,
-    closed (workers stopped) when the block ends, however it ends."""
+def _new_cluster(workers: int):
+    return _distributed().LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                       dashboard_address=":0", silence_logs=logging.CRITICAL)
+
+
+def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
+    """Start a LocalCluster of ``workers`` single-threaded processes in the
+    background, run blocks here from the front while it starts (a start costs
+    each worker about a second of imports), then the rest on the cluster;
+    the cluster is closed (workers stopped) however this ends."""
     dd = _distributed()
-    cluster = None
+    started: dict = {}
+
+    def start():
+        try:
+            started["cluster"] = _new_cluster(workers)
+        except BaseException as exc:  # noqa: BLE001 — handed to the caller's thread
+            started["error"] = exc
+
+    parts: list = []
     try:
         with _sigint_ignored():
-            cluster = dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                      dashboard_address=":0", silence_logs=logging.CRITICAL)
-        with dd.Client(cluster) as client:
-            yield client
+            thread = threading.Thread(target=start, name="treeflux-cluster-start", daemon=True)
+            thread.start()
+            while thread.is_alive() and len(parts) < len(blocks):
+                a, b = blocks[len(parts)]
+                parts.append(run_block(model, sweep, a, b))
+                bar.update(b - a)
+            thread.join()
+        if "error" in started:
+            raise EvaluationError(f"could not start {workers} local workers: {started['error']}")
+        if len(parts) < len(blocks):
+            with dd.Client(started["cluster"]) as client:
+                parts += _on_cluster(client, model, sweep, blocks[len(parts):], bar)
+        return parts
     finally:
-        if cluster is not None:
-            cluster.close()
+        if started.get("cluster") is not None:
+            started["cluster"].close()
 
 
 @contextmanager
