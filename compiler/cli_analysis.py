@@ -328,17 +328,6 @@ def _sample_count(text):
     return int(text) if text.strip().lstrip("+").isdigit() else int(v)
 
 
-def _seed(text):
-    import argparse
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"{text!r}: the seed must be 0 or more")
-    return v
-
-
 def register(subparsers) -> None:
     """Add the analysis subcommands to an argparse sub-parsers object."""
     q = subparsers.add_parser("response", help="response curve of an observable to one input")
@@ -366,7 +355,7 @@ def register(subparsers) -> None:
     q = subparsers.add_parser("sample", help="sample parameter space log-uniformly")
     _common(q)
     q.add_argument("--n", type=_sample_count, required=True, help="number of samples (1e6 is accepted)")
-    q.add_argument("--seed", type=_seed, default=0)
+    q.add_argument("--seed", type=int, default=0, help="0 or more (sample refuses others)")
     where = q.add_mutually_exclusive_group()
     where.add_argument("--workers", type=_positive_int,
                        help="start a local Dask cluster of this many worker processes")

@@ -199,6 +199,9 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         (:mod:`treeflux.compiler.artifacts`).
     """
     from . import artifacts
+    # how another process compiles the same model (CompiledModel pickles as this)
+    keywords = dict(method=method, backend=backend, jacobian=jacobian, log_jacobian=log_jacobian,
+                    input_derivatives=input_derivatives, name=name, cache=cache)
 
     timings = {}
     back = _backend(backend)
@@ -207,15 +210,12 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     label_kernel = importlib.import_module("treeflux.compiler.backends.python").build(label_fn, name=f"{name}_rates")
     options = {"jacobian": jacobian, "log_jacobian": log_jacobian,
                "input_derivatives": input_derivatives, "name": name}
-    # a snapshot of the scheme as data (later edits to it do not change this model)
-    recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL),
-                              {**options, "method": method, "backend": backend, "cache": cache}))
     key = artifacts.model_key(scheme, method=method, backend=backend, options=options)
     hit = artifacts.load(key) if cache else None
     if hit is not None:
         kernel, info, profile = hit
         profile["cache"] = "hit"
-        return _model(scheme, info, kernel, label_kernel, profile, recipe)
+        return _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
     t0 = time.perf_counter()
     chosen = plan(scheme, method)
     timings["plan"] = time.perf_counter() - t0
@@ -274,36 +274,41 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
         artifacts.store(key, kernel, info, profile)
-    model = _model(scheme, info, kernel, label_kernel, profile, recipe)
+    model = _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
 
 
-def _model(scheme, info: ModelInfo, kernel, label_kernel, profile, recipe) -> CompiledModel:
+def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
     method = info.method
-    model = CompiledModel(info, kernel, label_kernel,
-                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
-                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
-                          profile=profile)
-    model.recipe = recipe  # how another process rebuilds it: CompiledModel pickles as this
+    return CompiledModel(info, kernel, label_kernel,
+                         formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
+                         emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
+                         profile=profile)
+
+
+def _with_recipe(model: CompiledModel, scheme: Scheme, keywords: dict) -> CompiledModel:
+    """Give ``model`` its rebuild recipe: a snapshot of the scheme as data (later
+    edits to the scheme do not change it) and the keywords of :func:`compile_scheme`."""
+    model.recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL), keywords))
     return model
 
 
 _REBUILT: dict = {}  # models rebuilt in this process by unpickling, by content
 
 
-def rebuild_model(scheme: bytes, options: dict) -> CompiledModel:
-    """Compile a pickled scheme with ``options`` (the keywords of :func:`compile_scheme`)
+def rebuild_model(scheme: bytes, keywords: dict) -> CompiledModel:
+    """Compile a pickled scheme with ``keywords`` (those of :func:`compile_scheme`)
     once per process: what an unpickled CompiledModel becomes (Dask workers). The
-    scheme travels as data (states, edges, parsed labels); the compile goes through
-    the cache."""
-    key = hashlib.sha256(scheme + json.dumps(options, sort_keys=True).encode()).hexdigest()
+    scheme travels as data (states, edges, parsed labels); the compile goes
+    through the cache."""
+    key = hashlib.sha256(scheme + json.dumps(keywords, sort_keys=True).encode()).hexdigest()
     model = _REBUILT.get(key)
     if model is None:
         while len(_REBUILT) >= 16:
             _REBUILT.pop(next(iter(_REBUILT)))
-        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **options)
+        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **keywords)
     return model
 
 
