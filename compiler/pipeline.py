@@ -288,30 +288,6 @@ def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledMo
                          profile=profile)
 
 
-def _with_recipe(model: CompiledModel, scheme: Scheme, keywords: dict) -> CompiledModel:
-    """Give ``model`` its rebuild recipe: a snapshot of the scheme as data (later
-    edits to the scheme do not change it) and the keywords of :func:`compile_scheme`."""
-    model.recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL), keywords))
-    return model
-
-
-_REBUILT: dict = {}  # models rebuilt in this process by unpickling, by content
-
-
-def rebuild_model(scheme: bytes, keywords: dict) -> CompiledModel:
-    """Compile a pickled scheme with ``keywords`` (those of :func:`compile_scheme`)
-    once per process: what an unpickled CompiledModel becomes (Dask workers). The
-    scheme travels as data (states, edges, parsed labels); the compile goes
-    through the cache."""
-    key = hashlib.sha256(scheme + json.dumps(keywords, sort_keys=True).encode()).hexdigest()
-    model = _REBUILT.get(key)
-    if model is None:
-        while len(_REBUILT) >= 16:
-            _REBUILT.pop(next(iter(_REBUILT)))
-        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **keywords)
-    return model
-
-
 def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, log: bool, along: str | None,
                  timings: dict, report: list) -> ir.Function:
     """Add derivative groups (``jac``, ``obs_jac``, ``d1``, ``d2``, ``obs_d1``, ``obs_d2``)."""
@@ -417,3 +393,27 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
         tmp.replace(path)
         written.append(path)
     return written
+
+
+def _with_recipe(model: CompiledModel, scheme: Scheme, keywords: dict) -> CompiledModel:
+    """Give ``model`` its rebuild recipe: a snapshot of the scheme as data (later
+    edits to the scheme do not change it) and the keywords of :func:`compile_scheme`."""
+    model.recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL), keywords))
+    return model
+
+
+_REBUILT: dict = {}  # models rebuilt in this process by unpickling, by content
+
+
+def rebuild_model(scheme: bytes, keywords: dict) -> CompiledModel:
+    """Compile a pickled scheme with ``keywords`` (those of :func:`compile_scheme`)
+    once per process: what an unpickled CompiledModel becomes (Dask workers). The
+    scheme travels as data (states, edges, parsed labels); the compile goes
+    through the cache."""
+    key = hashlib.sha256(scheme + json.dumps(keywords, sort_keys=True).encode()).hexdigest()
+    model = _REBUILT.get(key)
+    if model is None:
+        while len(_REBUILT) >= 16:
+            _REBUILT.pop(next(iter(_REBUILT)))
+        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **keywords)
+    return model
