@@ -118,11 +118,21 @@ def draws(sweep: Sweep, start: int, stop: int) -> np.ndarray:
     return np.exp(lo + U * (hi - lo))
 
 
+def _weighted(P: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """P @ W by elementwise steps in a fixed order: the same bits for a row
+    whatever the batch, the process or its BLAS threads (OpenBLAS rounds the
+    last row of a product differently with one thread than with several)."""
+    out = np.zeros((P.shape[0], W.shape[1]))
+    for j in range(P.shape[1]):
+        out += P[:, j:j + 1] * W[j]
+    return out
+
+
 def _evaluate(model, X: np.ndarray, task) -> np.ndarray:
     if task is None:
         P = model.steady_state(X)
         if model.observable_names:
-            return np.hstack([P, P @ model.observable_weights])
+            return np.hstack([P, _weighted(P, model.observable_weights)])
         return P
     from .response import response_summaries
     s = response_summaries(model, X, skip_flat=True, **task)
@@ -327,16 +337,22 @@ def _sigint_ignored():
         signal.signal(signal.SIGINT, previous)
 
 
+# Dask starts workers with these set: MALLOC_TRIM_THRESHOLD_ turns off glibc's
+# adaptive mmap threshold (every large numpy temporary is then mapped and
+# unmapped again: response blocks ran ~1.5x slower in workers than here), and
+# one BLAS thread makes OpenBLAS round the last row of a matrix-vector product
+# differently from this process (its default thread count), so tables would
+# differ in the last bit. Our workers start with this process's settings.
+_UNSET_WORKER_ENV = ("MALLOC_TRIM_THRESHOLD_", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
+
+
 def _new_cluster(workers: int):
-    """A LocalCluster of single-threaded worker processes. Dask starts workers
-    with MALLOC_TRIM_THRESHOLD_ set, which turns off glibc's adaptive mmap
-    threshold: every large numpy temporary is then mapped and unmapped again,
-    and a response block ran about 1.5× slower there than in this process
-    (measured here). Ours start without it."""
+    """A LocalCluster of single-threaded worker processes (see _UNSET_WORKER_ENV)."""
     dd = _distributed()
     import dask.config
 
-    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+    unset = {f"distributed.nanny.pre-spawn-environ.{k}": None for k in _UNSET_WORKER_ENV}
+    with dask.config.set(unset):
         return dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                dashboard_address=":0", silence_logs=logging.CRITICAL)
 

@@ -35,8 +35,9 @@ RESPONSE = {"observable": "polymerase_bound", "input": "c", "lo": 1e-2, "hi": 1e
 
 @pytest.fixture(scope="module")
 def client():
-    cluster = dd.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                              dashboard_address=":0")
+    # two single-threaded worker processes with this process's BLAS and malloc
+    # settings (what `sample(workers=2)` starts; see sampling._UNSET_WORKER_ENV)
+    cluster = sampling._new_cluster(2)
     c = dd.Client(cluster)
     yield c
     c.close()
