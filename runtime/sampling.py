@@ -24,6 +24,8 @@ they finish in.
 from __future__ import annotations
 
 import csv
+import ctypes
+import functools
 import logging
 import math
 import os
@@ -148,9 +150,54 @@ def run_block(model, sweep: Sweep, start: int, stop: int) -> np.ndarray:
 
 
 def _remote_block(model, sweep: Sweep, start: int, stop: int) -> np.ndarray:
-    # A worker runs one task per thread it has: one kernel thread per task.
+    # A worker runs one task per thread it has: one kernel thread and one BLAS
+    # thread per task (see _one_blas_thread).
     _kernel.set_default_threads(1)
+    blas = _openblas()
+    if blas is not None:
+        blas[0](1)
     return run_block(model, sweep, start, stop)
+
+
+@functools.lru_cache(maxsize=None)
+def _openblas():
+    """(set_num_threads, get_num_threads) of the OpenBLAS numpy loaded, or None."""
+    try:
+        with open("/proc/self/maps") as fh:
+            paths = sorted({line.split()[-1] for line in fh if "openblas" in line.lower() and ".so" in line})
+    except OSError:
+        return None
+    for path in paths:
+        try:
+            lib = ctypes.CDLL(path)
+        except OSError:
+            continue
+        for name in ("scipy_openblas{}_num_threads64_", "openblas{}_num_threads64_", "openblas{}_num_threads"):
+            setter = getattr(lib, name.format("_set"), None)
+            getter = getattr(lib, name.format("_get"), None)
+            if setter is not None and getter is not None:
+                setter.argtypes = [ctypes.c_int]
+                return setter, getter
+    return None
+
+
+@contextmanager
+def _one_blas_thread():
+    """Evaluate with one BLAS thread, as Dask workers do (OPENBLAS_NUM_THREADS=1):
+    OpenBLAS rounds the last row of a matrix-vector product differently with
+    one thread than with several, and the table must not depend on where a
+    block ran. (Another BLAS than OpenBLAS is left alone.)"""
+    blas = _openblas()
+    if blas is None:
+        yield
+        return
+    setter, getter = blas
+    before = getter()
+    setter(1)
+    try:
+        yield
+    finally:
+        setter(before)
 
 
 def block_rows(model, task, n_columns: int) -> int:
@@ -285,7 +332,7 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
                   logs=np.log(np.array([ranges[k] for k in names])), task=task)
     rows = block_rows(model, task, len(names) + len(outputs))
     blocks = [(a, min(n, a + rows)) for a in range(0, n, rows)]
-    with progress("sampling", total=n, unit="sample") as bar:
+    with progress("sampling", total=n, unit="sample") as bar, _one_blas_thread():
         if client is not None:
             parts = _on_cluster(client, model, sweep, blocks, bar)
         elif scheduler is not None:
@@ -337,22 +384,16 @@ def _sigint_ignored():
         signal.signal(signal.SIGINT, previous)
 
 
-# Dask starts workers with these set: MALLOC_TRIM_THRESHOLD_ turns off glibc's
-# adaptive mmap threshold (every large numpy temporary is then mapped and
-# unmapped again: response blocks ran ~1.5x slower in workers than here), and
-# one BLAS thread makes OpenBLAS round the last row of a matrix-vector product
-# differently from this process (its default thread count), so tables would
-# differ in the last bit. Our workers start with this process's settings.
-_UNSET_WORKER_ENV = ("MALLOC_TRIM_THRESHOLD_", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS")
-
-
 def _new_cluster(workers: int):
-    """A LocalCluster of single-threaded worker processes (see _UNSET_WORKER_ENV)."""
+    """A LocalCluster of single-threaded worker processes. Dask starts workers
+    with MALLOC_TRIM_THRESHOLD_ set, which turns off glibc's adaptive mmap
+    threshold: every large numpy temporary is then mapped and unmapped again,
+    and response blocks ran ~1.5x slower in workers than here (measured).
+    Ours start without it."""
     dd = _distributed()
     import dask.config
 
-    unset = {f"distributed.nanny.pre-spawn-environ.{k}": None for k in _UNSET_WORKER_ENV}
-    with dask.config.set(unset):
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
         return dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                dashboard_address=":0", silence_logs=logging.CRITICAL)
 
