@@ -119,11 +119,22 @@ def test_each_worker_rebuilds_a_model_once(client, monkeypatch):
     assert set(counts.values()) <= {0, 1} and sum(counts.values()) >= 1
 
 
+def spawned_workers(parent) -> list:
+    """Worker processes started from ``parent`` (multiprocessing's own resource
+    tracker, which lives as long as its parent, is not one; short-lived helper
+    processes may vanish while we look)."""
+    found = []
+    for p in parent.children(recursive=True):
+        try:
+            if "spawn_main" in " ".join(p.cmdline()):
+                found.append(p)
+        except psutil.Error:
+            pass
+    return found
+
+
 def worker_processes() -> set:
-    """Worker processes started from this one (multiprocessing's own resource
-    tracker, which lives as long as this process, is not one)."""
-    return {p.pid for p in psutil.Process().children(recursive=True)
-            if "spawn_main" in " ".join(p.cmdline())}
+    return {p.pid for p in spawned_workers(psutil.Process())}
 
 
 def test_workers_start_and_stop_a_local_cluster(promoter, monkeypatch):
@@ -302,9 +313,12 @@ def interrupt_when_running(proc, out, tmp_path):
         # started: two worker processes, and SIGINT no longer ignored by the command
         # (it ignores SIGINT while the workers start, so that they inherit that)
         time.sleep(0.3)
-        workers = [p for p in parent.children(recursive=True) if "spawn_main" in " ".join(p.cmdline())]
-        if len(workers) >= 2 and not sigint_ignored(proc.pid) and all(map(sigint_ignored, workers)):
-            break
+        workers = spawned_workers(parent)
+        try:
+            if len(workers) >= 2 and not sigint_ignored(proc.pid) and all(map(sigint_ignored, workers)):
+                break
+        except OSError:            # a process went away while we read its status
+            continue
     assert len(workers) >= 2, "the local cluster did not start"
     family = parent.children(recursive=True)
     time.sleep(1.0)                        # the sweep runs (it takes ~10 s on two free cores)
