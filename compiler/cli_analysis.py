@@ -14,7 +14,6 @@ from __future__ import annotations
 import math
 import re
 import sys
-from functools import partial
 
 from treeflux.runtime.errors import EvaluationError
 
@@ -34,10 +33,6 @@ def _compile(path, method="auto", backend="python"):
     from .pipeline import compile_scheme
     scheme = _cli().load_model(path)
     return scheme, compile_scheme(scheme, method=method, backend=backend)
-
-
-def _rebuild(path, method, backend):
-    return _compile(path, method, backend)[1]
 
 
 def _values(args) -> dict:
@@ -293,8 +288,8 @@ def cmd_passage(args) -> int:
 # ------------------------------------------------------------------ sample
 
 def cmd_sample(args) -> int:
-    import numpy as np
-    from treeflux.runtime.analysis import sample, write_table
+    from treeflux.runtime import progress, safe_io
+    from treeflux.runtime.sampling import sample, summarize, write_csv, write_table
     _check_outputs(args)
     spec = [args.observable, args.input, args.range]
     if any(v is not None for v in spec) and not all(v is not None for v in spec):
@@ -304,37 +299,61 @@ def cmd_sample(args) -> int:
         lo, hi = parse_range(args.range)
         response = {"observable": args.observable, "input": args.input, "lo": lo, "hi": hi,
                     "points": args.points}
+    if args.quiet or args.json:
+        progress.set_enabled(False)
+    for path in (args.out, args.plot):
+        if path:
+            safe_io.check_target(path)             # refused before the sweep, not after it
     plt = _pyplot() if args.plot else None
     values = _values(args)
     _, model = _compile(args.model, args.method, args.backend)
-    r = sample(model, args.n, seed=args.seed, values=values, response=response,
-               workers=args.workers, scheduler=args.scheduler,
-               rebuild=partial(_rebuild, args.model, args.method, args.backend))
-    if args.out:
-        write_table(r, args.out)
-    if plt is not None:
-        _plot_samples(plt, r, args.plot)
+    written = None
+    try:
+        r = sample(model, args.n, seed=args.seed, values=values, response=response,
+                   workers=args.workers, scheduler=args.scheduler)
+        if args.out:
+            written = write_table(r, args.out)
+        if plt is not None:
+            _plot_samples(plt, r, args.plot)
+    except KeyboardInterrupt:   # the cluster is closed and no partial file is left by now
+        print(f"treeflux: interrupted; {f'only {written} was written' if written else 'nothing was written'}",
+              file=sys.stderr)
+        return 130
+    stats = summarize(r)
     if args.json:
         summary = {"n": args.n, "seed": args.seed, "columns": r["columns"], "ranges": r["ranges"],
                    "fixed": r["fixed"], "response": r["response"], "out": args.out,
-                   "plot": args.plot, "note": r["note"]}
-        data = r["data"]
-        summary["summary"] = {}
-        for c, name in enumerate(r["columns"]):
-            col = data[:, c][np.isfinite(data[:, c])]
-            summary["summary"][name] = ({"min": col.min(), "median": float(np.median(col)),
-                                         "max": col.max(), "count": int(col.size)} if col.size
-                                        else {"count": 0})
+                   "plot": args.plot, "note": r["note"], "summary": stats["columns"]}
+        if "curves" in stats:
+            summary["curves"] = stats["curves"]
         if not args.out:
-            summary["rows"] = data
+            summary["rows"] = r["data"]
         _emit(summary)
     elif not args.out:
-        sys.stdout.write(",".join(r["columns"]) + "\n")
-        for row in r["data"]:
-            sys.stdout.write(",".join(f"{v:.17g}" for v in row) + "\n")
+        write_csv(r, sys.stdout)
     else:
-        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out}")
+        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out} (model predictions)")
+        _print_sample_summary(r, stats)
     return 0
+
+
+def _print_sample_summary(r, stats) -> None:
+    curves = stats.get("curves")
+    if curves is not None:
+        task = r["response"]
+        print(f"response of {task['observable']} to {task['input']} over [{task['lo']:g}, {task['hi']:g}]: "
+              f"{curves['saturated']} curves saturated within the range, {curves['unsaturated']} did not "
+              f"(excluded from the statistics below), {curves['flat']} flat")
+        names = [c for c in ("ec50", "hill_effective", "max_log_slope") if c in stats["columns"]]
+    else:
+        names = [c for c in r["columns"] if c not in r["ranges"]]
+    for name in names:
+        s = stats["columns"][name]
+        if s["count"]:
+            print(f"  {name:<17} min {_g(s['min'])}  median {_g(s['median'])}  max {_g(s['max'])}  "
+                  f"({s['count']} values)")
+        else:
+            print(f"  {name:<17} no finite values")
 
 
 def _plot_samples(plt, r, path):
@@ -344,10 +363,15 @@ def _plot_samples(plt, r, path):
     if r["response"] is not None:
         x, y = data[:, cols.index("ec50")], data[:, cols.index("hill_effective")]
         ok = np.isfinite(x) & np.isfinite(y)
-        ax.scatter(x[ok], y[ok], s=4, alpha=0.5)
+        sat = data[:, cols.index("saturated")] == 1
+        ax.scatter(x[ok & sat], y[ok & sat], s=4, alpha=0.5,
+                   label=f"saturated within the range ({int((ok & sat).sum())})")
+        ax.scatter(x[ok & ~sat], y[ok & ~sat], s=6, facecolors="none", edgecolors="grey", lw=0.5,
+                   label=f"not saturated: values describe the range ({int((ok & ~sat).sum())})")
         ax.set_xscale("log")
         ax.set_xlabel(f"EC50 of {r['response']['observable']} in {r['response']['input']}")
-        ax.set_ylabel("effective Hill coefficient")
+        ax.set_ylabel("effective Hill coefficient (model prediction)")
+        ax.legend(fontsize="small")
     else:
         outputs = [c for c in cols if c not in r["ranges"]]
         for name in outputs[:8]:
@@ -515,11 +539,12 @@ def register(subparsers) -> None:
 
     q = subparsers.add_parser("sample", help="sample parameter space log-uniformly")
     _common(q)
-    q.add_argument("--n", type=_positive_int, required=True, help="number of samples")
+    q.add_argument("--n", type=_positive_int, required=True, help="number of samples (1e6 is accepted)")
     q.add_argument("--seed", type=_seed, default=0)
     where = q.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=_workers, help="processes of a local pool")
-    where.add_argument("--scheduler", metavar="ADDR", help="dask.distributed scheduler address")
+    where.add_argument("--workers", type=_workers,
+                       help="start a local Dask cluster of this many worker processes")
+    where.add_argument("--scheduler", metavar="ADDR", help="run on the Dask scheduler at this address")
     q.add_argument("--observable", help="with --input and --range: summarize response curves")
     q.add_argument("--input")
     q.add_argument("--range", metavar="LO:HI")
@@ -527,6 +552,8 @@ def register(subparsers) -> None:
     q.add_argument("--out", metavar="FILE", help="write the table (.csv, or .npz) atomically")
     q.add_argument("--plot", metavar="FILE.png", help="draw the samples (needs matplotlib)")
     q.add_argument("--json", action="store_true", help="print a JSON summary")
+    if not any("--quiet" in a.option_strings for a in q._actions):
+        q.add_argument("--quiet", action="store_true", help="no progress bar")
     q.set_defaults(handler=cmd_sample, guard=guard_sample)
 
     q = subparsers.add_parser("fit", help="fit bounded parameters to measured observables")

@@ -9,15 +9,16 @@ and refuses requests that would exhaust memory or time, before any work.
 
 from __future__ import annotations
 
+import hashlib
 import importlib
 import json
 import os
+import pickle
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from treeflux.runtime.model import CompiledModel, ModelInfo
-from treeflux.runtime.safe_io import write_files
 
 from . import ir
 from .backends.naming import Interface, stem
@@ -326,6 +327,9 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         (:mod:`treeflux.compiler.artifacts`).
     """
     from . import artifacts
+    # how another process compiles the same model (CompiledModel pickles as this)
+    keywords = dict(method=method, backend=backend, jacobian=jacobian, log_jacobian=log_jacobian,
+                    input_derivatives=input_derivatives, name=name, cache=cache)
 
     timings = {}
     back = _backend(backend)
@@ -342,7 +346,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     if hit is not None:
         kernel, info, profile = hit
         profile["cache"] = "hit"
-        return _model(scheme, info, kernel, label_kernel, profile)
+        return _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
     t0 = time.perf_counter()
     chosen = plan(scheme, method)
     timings["plan"] = time.perf_counter() - t0
@@ -401,7 +405,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
         artifacts.store(key, kernel, info, profile)
-    model = _model(scheme, info, kernel, label_kernel, profile)
+    model = _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
@@ -570,3 +574,27 @@ def _emit_function(scheme: Scheme, *, method: str, checks: bool):
                       observables=tuple(scheme.observables) if "obs" in groups else (),
                       groups=groups, outputs=tuple(outputs), checks=n_checks)
     return fn, iface
+
+
+def _with_recipe(model: CompiledModel, scheme: Scheme, keywords: dict) -> CompiledModel:
+    """Give ``model`` its rebuild recipe: a snapshot of the scheme as data (later
+    edits to the scheme do not change it) and the keywords of :func:`compile_scheme`."""
+    model.recipe = (rebuild_model, (pickle.dumps(scheme, protocol=pickle.HIGHEST_PROTOCOL), keywords))
+    return model
+
+
+_REBUILT: dict = {}  # models rebuilt in this process by unpickling, by content
+
+
+def rebuild_model(scheme: bytes, keywords: dict) -> CompiledModel:
+    """Compile a pickled scheme with ``keywords`` (those of :func:`compile_scheme`)
+    once per process: what an unpickled CompiledModel becomes (Dask workers). The
+    scheme travels as data (states, edges, parsed labels); the compile goes
+    through the cache."""
+    key = hashlib.sha256(scheme + json.dumps(keywords, sort_keys=True).encode()).hexdigest()
+    model = _REBUILT.get(key)
+    if model is None:
+        while len(_REBUILT) >= 16:
+            _REBUILT.pop(next(iter(_REBUILT)))
+        model = _REBUILT[key] = compile_scheme(pickle.loads(scheme), **keywords)
+    return model

@@ -9,6 +9,7 @@ release the GIL, so :class:`Kernel` splits large N across threads.
 
 from __future__ import annotations
 
+import hashlib
 import os
 from concurrent.futures import ThreadPoolExecutor
 
@@ -21,6 +22,28 @@ from .errors import EvaluationError
 MIN_ROWS_PER_THREAD = 2048
 
 _POOL: ThreadPoolExecutor | None = None
+# Threads per call when the caller gives none (None: every core). Worker
+# processes of a sweep set 1: the cluster already runs one task per core.
+_DEFAULT_THREADS: int | None = None
+_REBUILT: dict = {}  # kernels rebuilt in this process from their recipes
+
+
+def set_default_threads(threads: int | None) -> None:
+    """Threads a kernel call uses when not told (None: one per core)."""
+    global _DEFAULT_THREADS
+    _DEFAULT_THREADS = None if threads is None else max(1, int(threads))
+
+
+def rebuild(func, args) -> "Kernel":
+    """``func(*args)`` once per process: what an unpickled Kernel becomes.
+    ``args`` is data (generated source or IR text, sizes, flags)."""
+    key = (func.__module__, func.__qualname__, hashlib.sha256(repr(args).encode()).hexdigest())
+    kernel = _REBUILT.get(key)
+    if kernel is None:
+        while len(_REBUILT) >= 32:
+            _REBUILT.pop(next(iter(_REBUILT)))
+        kernel = _REBUILT[key] = func(*args)
+    return kernel
 
 
 def _pool() -> ThreadPoolExecutor:
@@ -78,7 +101,7 @@ class Kernel:
         elif out.shape != (n, self.n_outputs) or out.dtype != np.float64 or not out.flags.c_contiguous:
             raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(n, self.n_outputs)}")
         check_threads(threads)
-        threads = threads or (os.cpu_count() or 1)
+        threads = threads or _DEFAULT_THREADS or (os.cpu_count() or 1)
         threads = max(1, min(threads, n // MIN_ROWS_PER_THREAD)) if self.parallel else 1
         if threads == 1:
             status = [self.run(X, out, 0, n)]
@@ -93,6 +116,7 @@ class Kernel:
         return out
 
     def __reduce__(self):
+        """Pickle as the recipe (data), rebuilt once per process by :func:`rebuild`."""
         if self.recipe is None:
             raise TypeError(f"this {self.backend} kernel has no recipe and cannot be pickled")
-        return self.recipe
+        return (rebuild, tuple(self.recipe))

@@ -400,6 +400,18 @@ class CompiledModel:
             raise EvaluationError("this model carries no emitter (loaded without its compiler)")
         return self._emitter(target, out_dir)
 
+    # ------------------------------------------------------------ pickling
+    def __reduce__(self):
+        """Pickle as data, never as a JIT engine or a loaded library: the
+        compiler's recipe (the scheme and the compile options, rebuilt once per
+        process through the cache) when the model has one, else the metadata and
+        the kernels' generated source. The recipe names a compiler function that
+        pickle imports by module path, so this module never imports the compiler."""
+        recipe = self.__dict__.get("recipe")
+        if recipe is not None:
+            return recipe
+        return (CompiledModel, (self.info, self.kernel, self.label_kernel))
+
 
 # ------------------------------------------------------------ argument checks
 

@@ -6,36 +6,65 @@ its bounds in the model; a parameter with only a value spans
 ``values`` are held fixed. Each sample is then evaluated: its steady state
 and observables, or — with a response specification — the summary of its
 response curve (ec50, effective Hill coefficient, steepest log-slope; see
-:mod:`treeflux.runtime.response`). Draws come from one seeded generator in
-the calling process, so the table does not depend on how the evaluation is
-split across processes.
+:mod:`treeflux.runtime.response`).
 
-Evaluation runs in this process, in a multiprocessing pool (``workers``),
-or on a dask.distributed cluster (``scheduler``, if dask is installed).
-Workers receive the model's metadata and kernels, which pickle through their
-recipes; when they do not, a picklable ``rebuild`` callable (for example one
-that recompiles the model file) is sent instead.
+The table is cut into blocks of rows (:func:`block_rows`: about a second of
+work or less, never under ~0.1 s for real sweeps, bounded in memory). The
+blocks depend only on the model, the request and ``n`` — never on where they
+run — and each block draws its own rows from the one seeded stream (PCG64,
+advanced to the block's first draw), so the table is the same, bit for bit,
+whether the blocks run in this process, on a local Dask cluster
+(``workers``; blocks run here while it starts) or on an existing one
+(``client``, ``scheduler``). A block is a small task (the model pickles as its
+recipe, the sweep as a few numbers), so a worker that dies loses nothing: the
+scheduler runs its blocks again. Blocks come back in order whatever order
+they finish in.
 """
 
 from __future__ import annotations
 
+import csv
+import ctypes
+import functools
+import logging
 import math
-import pickle
+import os
+import signal
+import threading
+from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from .errors import EvaluationError
+from . import kernel as _kernel
+from .errors import EvaluationError, TreefluxError
+from .progress import progress
 
-__all__ = ["sample", "sample_ranges", "write_table", "DEFAULT_DECADES", "RESPONSE_COLUMNS"]
+__all__ = ["sample", "sample_ranges", "summarize", "write_table", "write_csv", "block_rows",
+           "DEFAULT_DECADES", "RESPONSE_COLUMNS", "CURVE_COLUMNS"]
 
 DEFAULT_DECADES = 1.0
 RESPONSE_COLUMNS = ("ec10", "ec50", "ec90", "hill_effective", "max_log_slope",
                     "max_log_slope_at", "max_slope", "max_slope_at", "direction", "saturated")
-# rows per task: big enough to amortize the pool's per-task cost, small
-# enough for the response grid (points × rows evaluations) to fit in memory
-_STEADY_CHUNK = 20_000
-_RESPONSE_CHUNK = 500
+# Columns that describe the shape of a curve within the range: their statistics
+# are taken over curves that saturated within it (an unsaturated curve's EC
+# values and Hill coefficient describe the range as much as the scheme).
+CURVE_COLUMNS = RESPONSE_COLUMNS[:8]
+# Work per block, in model evaluations (one parameter set through the kernel):
+# about 0.4 s on the numpy back end for a small scheme, 0.15 s on LLVM —
+# above the ~1 ms a Dask task costs, below the time a lost block costs again.
+EVALS_PER_BLOCK = 1_000_000
+# Model evaluations per response curve beyond its grid: EC solves (3 levels ×
+# ~10 Illinois steps) and two golden-section searches (60 steps × 2 points).
+RESPONSE_EXTRA_EVALS = 280
+# Floats a block may hold at once (its output, or the response grid's states).
+BLOCK_FLOATS = 2_000_000
+# Resident memory of one worker process with numpy, dask and treeflux loaded
+# (measured about 110 MB here; rounded up).
+WORKER_BYTES = 200 * 2 ** 20
+# How long to try reaching a scheduler given by address.
+CONNECT_TIMEOUT = "10s"
 
 
 def sample_ranges(model, *, values=None, decades: float = DEFAULT_DECADES) -> dict:
@@ -61,66 +90,175 @@ def sample_ranges(model, *, values=None, decades: float = DEFAULT_DECADES) -> di
         if hi is None:
             hi = v * 10.0 ** decades
         if not lo > 0:
-            raise EvaluationError(f"parameter {name!r}: log-uniform sampling needs min > 0, got {lo}")
+            raise EvaluationError(f"parameter {name!r}: log-uniform sampling needs min > 0, got {lo:g}")
         ranges[name] = (float(lo), float(hi))
     return ranges
 
 
-# ------------------------------------------------------------------ workers
+# ------------------------------------------------------------------ one block
 
-_WORKER: dict = {}
+@dataclass(frozen=True)
+class Sweep:
+    """Everything a block needs besides the model (a few numbers: cheap to ship)."""
 
-
-def _payload(model, rebuild):
-    """What a worker process needs to rebuild the model."""
-    try:
-        blob = pickle.dumps((model.info, model.kernel, model.label_kernel))
-        return ("parts", blob)
-    except Exception:
-        if rebuild is None:
-            raise EvaluationError("this model's compiled kernel cannot be sent to worker processes; "
-                                  "pass rebuild= (the command line recompiles from the model file)") from None
-        return ("rebuild", pickle.dumps(rebuild))
+    seed: int
+    base: np.ndarray        # (n_symbols,) fixed values; sampled columns are overwritten
+    columns: tuple          # symbol index of each sampled parameter
+    logs: np.ndarray        # (k, 2): ln lo, ln hi of each sampled parameter
+    task: dict | None       # response specification, or None for steady states
 
 
-def _model_from(payload):
-    kind, blob = payload
-    if kind == "parts":
-        from .model import CompiledModel
-        info, kernel, labels = pickle.loads(blob)
-        return CompiledModel(info, kernel, labels)
-    return pickle.loads(blob)()
+def draws(sweep: Sweep, start: int, stop: int) -> np.ndarray:
+    """Sampled parameters of rows start:stop, (stop − start, k): the same
+    numbers as rows start:stop of one ``default_rng(seed).random((n, k))``
+    (PCG64 spends one 64-bit output per double; ``advance`` skips the rows before)."""
+    k = len(sweep.columns)
+    rng = np.random.default_rng(sweep.seed)
+    rng.bit_generator.advance(start * k)
+    U = rng.random((stop - start, k))
+    lo, hi = sweep.logs[:, 0], sweep.logs[:, 1]
+    return np.exp(lo + U * (hi - lo))
 
 
-def _init_worker(payload, task):
-    _WORKER["model"] = _model_from(payload)
-    _WORKER["task"] = task
+def _weighted(P: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """P @ W by elementwise steps in a fixed order: the same bits for a row
+    whatever the batch, the process or its BLAS threads (OpenBLAS rounds the
+    last row of a product differently with one thread than with several)."""
+    out = np.zeros((P.shape[0], W.shape[1]))
+    for j in range(P.shape[1]):
+        out += P[:, j:j + 1] * W[j]
+    return out
 
 
-def _run_chunk(X):
-    return _evaluate(_WORKER["model"], X, _WORKER["task"])
-
-
-def _run_remote(payload, task, X):
-    return _evaluate(_model_from(payload), X, task)
-
-
-def _evaluate(model, X, task) -> np.ndarray:
+def _evaluate(model, X: np.ndarray, task) -> np.ndarray:
     if task is None:
         P = model.steady_state(X)
         if model.observable_names:
-            return np.hstack([P, P @ model.observable_weights])
+            return np.hstack([P, _weighted(P, model.observable_weights)])
         return P
     from .response import response_summaries
     s = response_summaries(model, X, skip_flat=True, **task)
-    return np.stack([s[c].astype(float) for c in RESPONSE_COLUMNS], axis=1)
+    return np.stack([np.asarray(s[c], dtype=float) for c in RESPONSE_COLUMNS], axis=1)
+
+
+def run_block(model, sweep: Sweep, start: int, stop: int) -> np.ndarray:
+    """Rows start:stop of the table: sampled parameters, then outputs."""
+    theta = draws(sweep, start, stop)
+    X = np.repeat(sweep.base[None, :], stop - start, axis=0)
+    X[:, list(sweep.columns)] = theta
+    return np.hstack([theta, _evaluate(model, X, sweep.task)])
+
+
+def _remote_block(model, sweep: Sweep, start: int, stop: int) -> np.ndarray:
+    # A worker runs one task per thread it has: one kernel thread and one BLAS
+    # thread per task (see _one_blas_thread).
+    _kernel.set_default_threads(1)
+    blas = _openblas()
+    if blas is not None:
+        blas[0](1)
+    return run_block(model, sweep, start, stop)
+
+
+@functools.lru_cache(maxsize=None)
+def _openblas():
+    """(set_num_threads, get_num_threads) of the OpenBLAS numpy loaded, or None."""
+    try:
+        with open("/proc/self/maps") as fh:
+            paths = sorted({line.split()[-1] for line in fh if "openblas" in line.lower() and ".so" in line})
+    except OSError:
+        return None
+    for path in paths:
+        try:
+            lib = ctypes.CDLL(path)
+        except OSError:
+            continue
+        for name in ("scipy_openblas{}_num_threads64_", "openblas{}_num_threads64_", "openblas{}_num_threads"):
+            setter = getattr(lib, name.format("_set"), None)
+            getter = getattr(lib, name.format("_get"), None)
+            if setter is not None and getter is not None:
+                setter.argtypes = [ctypes.c_int]
+                return setter, getter
+    return None
+
+
+@contextmanager
+def _one_blas_thread():
+    """Evaluate with one BLAS thread, as Dask workers do (OPENBLAS_NUM_THREADS=1):
+    OpenBLAS rounds the last row of a matrix-vector product differently with
+    one thread than with several, and the table must not depend on where a
+    block ran. (Another BLAS than OpenBLAS is left alone.)"""
+    blas = _openblas()
+    if blas is None:
+        yield
+        return
+    setter, getter = blas
+    before = getter()
+    setter(1)
+    try:
+        yield
+    finally:
+        setter(before)
+
+
+def block_rows(model, task, n_columns: int) -> int:
+    """Rows per block for this model and request (see the module doc)."""
+    if task is None:
+        evals, width = 1, n_columns
+    else:
+        evals = task["points"] + RESPONSE_EXTRA_EVALS
+        width = task["points"] * len(model.states)
+    return max(1, min(EVALS_PER_BLOCK // evals, BLOCK_FLOATS // max(1, width)))
+
+
+# ------------------------------------------------------------------ guards
+
+def available_memory() -> int | None:
+    """Bytes of memory available to new work (Linux MemAvailable), or None."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def _mib(b: float) -> str:
+    return f"{b / 2 ** 20:,.0f} MiB"
+
+
+def _check_memory(n: int, n_columns: int, workers: int | None) -> None:
+    have = available_memory()
+    if have is None:
+        return
+    table = 2 * n * n_columns * 8  # the blocks, then the table stacked from them
+    if table > have:
+        raise EvaluationError(f"{n:,} samples need about {_mib(table)} for the table "
+                              f"({n_columns} columns of float64, twice while it is assembled); "
+                              f"{_mib(have)} is available: ask for fewer samples")
+    if workers and workers > 1 and workers * WORKER_BYTES > have:
+        raise EvaluationError(f"{workers} worker processes need about {_mib(workers * WORKER_BYTES)} "
+                              f"(about {_mib(WORKER_BYTES)} each); {_mib(have)} is available: "
+                              f"use at most {max(1, have // WORKER_BYTES)} (this machine has "
+                              f"{os.cpu_count() or 1} cores)")
+
+
+def _check_count(value, what: str) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer, float)) \
+            or not math.isfinite(value) or int(value) != value or value < 1:
+        raise EvaluationError(f"{what} must be a positive integer, got {value!r}")
+    return int(value)
 
 
 # ------------------------------------------------------------------ sampling
 
 def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAULT_DECADES,
-           response: dict | None = None, workers: int | None = None,
-           scheduler: str | None = None, rebuild=None) -> dict:
+           response: dict | None = None, workers: int | None = None, client=None,
+           scheduler: str | None = None) -> dict:
     """Sample parameter space log-uniformly and evaluate every sample.
 
     Parameters
@@ -129,7 +267,8 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
     n : int
         Number of samples.
     seed : int
-        Seed of the numpy generator (PCG64); same seed, same table.
+        Seed of the numpy generator (PCG64); same seed, same table, wherever
+        it is computed.
     values : dict, optional
         Symbols held fixed (name → number); other inputs take the model's values.
     decades : float
@@ -139,12 +278,12 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
         ``observable``, ``input``, ``lo``, ``hi`` and optionally ``points``:
         summarize each sample's response curve instead of its steady state.
     workers : int, optional
-        Evaluate in a multiprocessing pool of this many processes.
+        Start a local Dask cluster of this many worker processes (one thread
+        each) for this call; 1 (or None) evaluates in this process.
+    client : dask.distributed.Client, optional
+        Run on this client's cluster (left open).
     scheduler : str, optional
-        Address of a dask.distributed scheduler (needs dask installed).
-    rebuild : callable, optional
-        Picklable zero-argument callable returning the model, sent to workers
-        when the model's kernels cannot be pickled.
+        Address of a running dask.distributed scheduler to connect to.
 
     Returns
     -------
@@ -153,15 +292,15 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
         parameters, then ``p_<state>`` and observables, or the response
         columns :data:`RESPONSE_COLUMNS`; NaN where a response is flat),
         ``ranges`` (parameter → [lo, hi]), ``fixed`` (symbol → value),
-        ``seed``, ``note``.
+        ``seed``, ``response``, ``blocks`` (rows per block), ``note``.
     """
-    if isinstance(n, bool) or int(n) != n or n < 1:
-        raise EvaluationError(f"number of samples must be a positive integer, got {n!r}")
-    n = int(n)
-    if workers is not None and scheduler is not None:
-        raise EvaluationError("give either workers or scheduler, not both")
-    if workers is not None and (int(workers) != workers or workers < 1):
-        raise EvaluationError(f"workers must be a positive integer, got {workers!r}")
+    n = _check_count(n, "number of samples")
+    if sum(x is not None for x in (workers, client, scheduler)) > 1:
+        raise EvaluationError("give one of workers, client or scheduler")
+    if workers is not None:
+        workers = _check_count(workers, "workers")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise EvaluationError(f"seed must be a non-negative integer, got {seed!r}")
     values = dict(values or {})
     for k, v in values.items():
         if np.ndim(v) != 0:
@@ -170,7 +309,7 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
     if response is not None:
         from .response import _input_column, _observable_weights, check_range
         task = {"observable": response["observable"], "input": response["input"],
-                "lo": None, "hi": None, "points": int(response.get("points", 41))}
+                "lo": None, "hi": None, "points": _check_count(response.get("points", 41), "points")}
         task["lo"], task["hi"] = check_range(response["lo"], response["hi"])
         _observable_weights(model, task["observable"])
         _input_column(model, task["input"])
@@ -179,70 +318,230 @@ def sample(model, n: int, *, seed: int = 0, values=None, decades: float = DEFAUL
     if not ranges:
         raise EvaluationError("nothing to sample: every parameter is fixed")
     names = list(ranges)
-    rng = np.random.default_rng(seed)
-    logs = np.log(np.array([ranges[k] for k in names]))
-    U = rng.random((n, len(names)))
-    theta = np.exp(logs[:, 0] + U * (logs[:, 1] - logs[:, 0]))
-    X = model.as_array({**values, **{k: theta[:, c] for c, k in enumerate(names)}})
-    X = np.ascontiguousarray(np.broadcast_to(X, (n, X.shape[1])))
     if task is not None:
-        columns = list(RESPONSE_COLUMNS)
+        outputs = list(RESPONSE_COLUMNS)
     else:
-        columns = [f"p_{s}" for s in model.states] + list(model.observable_names)
-    clash = set(names) & set(columns)
+        outputs = [f"p_{s}" for s in model.states] + list(model.observable_names)
+    clash = set(names) & set(outputs)
     if clash:
         raise EvaluationError(f"column name {sorted(clash)[0]!r} is both a parameter and an output")
-    chunk = _RESPONSE_CHUNK if task is not None else _STEADY_CHUNK
-    if workers and workers > 1 or scheduler:
-        chunk = max(1, min(chunk, math.ceil(n / (4 * (workers or 4)))))
-    pieces = [X[a:a + chunk] for a in range(0, n, chunk)]
-    if scheduler:
-        results = _dask_map(model, rebuild, task, pieces, scheduler)
-    elif workers and workers > 1:
-        import multiprocessing as mp
-        payload = _payload(model, rebuild)
-        with mp.get_context().Pool(int(workers), initializer=_init_worker,
-                                    initargs=(payload, task)) as pool:
-            results = pool.map(_run_chunk, pieces)
-    else:
-        results = [_evaluate(model, piece, task) for piece in pieces]
-    data = np.hstack([theta, np.vstack(results)])
-    fixed = {k: float(v) for k, v in zip(model.symbols, X[0]) if k not in ranges}
+    _check_memory(n, len(names) + len(outputs) + len(model.symbols), workers)
+    symbols = model.symbols
+    base = model.as_array({**values, **{k: ranges[k][0] for k in names}})[0]
+    sweep = Sweep(seed=int(seed), base=base, columns=tuple(symbols.index(k) for k in names),
+                  logs=np.log(np.array([ranges[k] for k in names])), task=task)
+    rows = block_rows(model, task, len(names) + len(outputs))
+    blocks = [(a, min(n, a + rows)) for a in range(0, n, rows)]
+    with progress("sampling", total=n, unit="sample") as bar, _one_blas_thread():
+        if client is not None:
+            parts = _on_cluster(client, model, sweep, blocks, bar)
+        elif scheduler is not None:
+            with _connect(scheduler) as c:
+                parts = _on_cluster(c, model, sweep, blocks, bar)
+        elif workers is not None and workers > 1:
+            parts = _on_new_cluster(workers, model, sweep, blocks, bar)
+        else:
+            parts = []
+            for a, b in blocks:
+                parts.append(run_block(model, sweep, a, b))
+                bar.update(b - a)
+    data = np.vstack(parts)
+    fixed = {k: float(v) for k, v in zip(symbols, base) if k not in ranges}
     if task is not None:
         fixed.pop(task["input"], None)
-    return {"columns": names + columns, "data": data,
+    return {"columns": names + outputs, "data": data,
             "ranges": {k: list(v) for k, v in ranges.items()}, "fixed": fixed,
-            "seed": seed, "response": task,
+            "seed": int(seed), "response": task, "blocks": rows,
             "note": "model predictions of the scheme, not measurements"}
 
 
-def _dask_map(model, rebuild, task, pieces, address):
+# ------------------------------------------------------------------ Dask
+
+def _distributed():
     try:
-        from dask.distributed import Client
+        import dask.distributed as dd
     except ImportError:
-        raise EvaluationError("--scheduler needs dask.distributed, which is not installed "
-                              "(pip install 'dask[distributed]'), or use --workers") from None
-    payload = _payload(model, rebuild)
-    with Client(address) as client:
-        futures = [client.submit(_run_remote, payload, task, piece, pure=False) for piece in pieces]
-        return client.gather(futures)
+        raise EvaluationError("running on several processes needs dask.distributed, which is not "
+                              "installed (pip install 'treeflux[dask]')") from None
+    return dd
+
+
+@contextmanager
+def _sigint_ignored():
+    """Ignore SIGINT while a cluster starts: the worker processes started
+    meanwhile inherit the ignored signal, so Ctrl-C at a terminal (sent to the
+    whole process group) reaches this process alone, which then closes the
+    cluster; workers would otherwise each print a traceback. (A Ctrl-C in
+    the second or two of the start is lost.) Main thread only; a cluster
+    started from another thread keeps the default."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _new_cluster(workers: int):
+    """A LocalCluster of single-threaded worker processes. Dask starts workers
+    with MALLOC_TRIM_THRESHOLD_ set, which turns off glibc's adaptive mmap
+    threshold: every large numpy temporary is then mapped and unmapped again,
+    and response blocks ran ~1.5x slower in workers than here (measured).
+    Ours start without it."""
+    dd = _distributed()
+    import dask.config
+
+    with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+        return dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                               dashboard_address=":0", silence_logs=logging.CRITICAL)
+
+
+def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
+    """Start a LocalCluster of ``workers`` single-threaded processes in the
+    background, run blocks here from the front while it starts (a start costs
+    each worker about a second of imports), then the rest on the cluster;
+    the cluster is closed (workers stopped) however this ends."""
+    dd = _distributed()
+    started: dict = {}
+
+    def start():
+        try:
+            started["cluster"] = _new_cluster(workers)
+        except BaseException as exc:  # noqa: BLE001 — handed to the caller's thread
+            started["error"] = exc
+
+    parts: list = []
+    try:
+        with _sigint_ignored():
+            thread = threading.Thread(target=start, name="treeflux-cluster-start", daemon=True)
+            thread.start()
+            while thread.is_alive() and len(parts) < len(blocks):
+                a, b = blocks[len(parts)]
+                parts.append(run_block(model, sweep, a, b))
+                bar.update(b - a)
+            thread.join()
+        if "error" in started:
+            raise EvaluationError(f"could not start {workers} local workers: {started['error']}")
+        if len(parts) < len(blocks):
+            with dd.Client(started["cluster"]) as client:
+                parts += _on_cluster(client, model, sweep, blocks[len(parts):], bar)
+        return parts
+    finally:
+        if started.get("cluster") is not None:
+            started["cluster"].close()
+
+
+@contextmanager
+def _connect(address: str):
+    dd = _distributed()
+    try:
+        client = dd.Client(address, timeout=CONNECT_TIMEOUT)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise EvaluationError(f"cannot reach the Dask scheduler at {address}: "
+                              f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None
+    with client:
+        yield client
+
+
+def _on_cluster(client, model, sweep: Sweep, blocks, bar) -> list:
+    """Run the blocks as tasks, collect them in order as they finish."""
+    dd = _distributed()
+    futures = [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
+    where = {f.key: i for i, f in enumerate(futures)}
+    parts: list = [None] * len(futures)
+    try:
+        for future in dd.as_completed(futures):
+            i = where[future.key]
+            a, b = blocks[i]
+            try:
+                parts[i] = future.result()
+            except TreefluxError:
+                raise
+            except dd.KilledWorker:
+                raise EvaluationError(f"samples {a}-{b - 1}: the workers that ran them died "
+                                      "(repeatedly); nothing was written") from None
+            except Exception as exc:
+                first = (str(exc).splitlines() or [""])[0]
+                raise EvaluationError(f"samples {a}-{b - 1} failed on the cluster: "
+                                      f"{type(exc).__name__}: {first}") from exc
+            bar.update(b - a)
+    finally:
+        if any(p is None for p in parts):
+            client.cancel(futures)
+    return parts
+
+
+# ------------------------------------------------------------------ summaries
+
+def summarize(result: dict) -> dict:
+    """Statistics of each column (min, median, max, count of finite values).
+
+    For response samples, the curve columns (:data:`CURVE_COLUMNS`) are
+    summarized over the curves that saturated within the range only; the
+    counts of saturated, unsaturated and flat curves are given under
+    ``curves``. Parameter columns are summarized over every sample.
+    """
+    cols, data = result["columns"], result["data"]
+    keep = np.ones(len(data), dtype=bool)
+    out: dict = {"columns": {}}
+    if result.get("response") is not None:
+        saturated = data[:, cols.index("saturated")] == 1
+        flat = data[:, cols.index("direction")] == 0
+        task = result["response"]
+        out["curves"] = {
+            "saturated": int(saturated.sum()),
+            "unsaturated": int((~saturated & ~flat).sum()),
+            "flat": int(flat.sum()),
+            "note": (f"statistics of {', '.join(CURVE_COLUMNS)} are over the curves that saturated "
+                     f"within [{task['lo']:g}, {task['hi']:g}]; the others still change at an end "
+                     "of the range, so their EC values and Hill coefficients describe the range"),
+        }
+        keep = saturated
+    for c, name in enumerate(cols):
+        col = data[keep, c] if name in CURVE_COLUMNS else data[:, c]
+        col = col[np.isfinite(col)]
+        out["columns"][name] = ({"min": float(col.min()), "median": float(np.median(col)),
+                                 "max": float(col.max()), "count": int(col.size)}
+                                if col.size else {"count": 0})
+    return out
 
 
 # ------------------------------------------------------------------ output
 
+# A text cell starting with one of these is a formula to a spreadsheet
+# (common practice, "CSV injection"): it is written with a leading apostrophe.
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _text_cell(text: str) -> str:
+    return "'" + text if text.startswith(_FORMULA_START) else text
+
+
+def write_csv(result: dict, fh) -> None:
+    """The table as CSV on a text stream: a header of column names (quoted
+    where they hold commas or quotes, and never read as a formula), then rows
+    of numbers with 17 significant digits (they round-trip float64)."""
+    writer = csv.writer(fh, lineterminator="\n")
+    writer.writerow([_text_cell(str(c)) for c in result["columns"]])
+    for start in range(0, len(result["data"]), 10_000):
+        writer.writerows([[f"{v:.17g}" for v in row] for row in result["data"][start:start + 10_000].tolist()])
+
+
 def write_table(result: dict, path) -> Path:
-    """Write a :func:`sample` result atomically through :mod:`treeflux.runtime.safe_io`
-    (exclusive temporary in the target folder, then rename; never through a link).
+    """Write a :func:`sample` result atomically through :mod:`~treeflux.runtime.safe_io`.
 
     ``.npz`` writes arrays ``data`` and ``columns``; anything else is CSV
-    with a header row and 17 significant digits (round-trips float64).
+    (:func:`write_csv`).
     """
-    import io
-    from .safe_io import write_file
-    fh = io.BytesIO()
-    if Path(path).suffix == ".npz":
-        np.savez(fh, data=result["data"], columns=np.array(result["columns"]))
-    else:
-        header = ",".join(result["columns"])
-        np.savetxt(fh, result["data"], delimiter=",", header=header, comments="", fmt="%.17g")
-    return write_file(path, fh.getvalue())
+    from .safe_io import output_path
+
+    path = Path(path)
+    with output_path(path) as tmp:
+        if path.suffix == ".npz":
+            np.savez(tmp, data=result["data"], columns=np.array(result["columns"]))
+        else:
+            with open(tmp, "w", newline="", encoding="utf-8") as fh:
+                write_csv(result, fh)
+    return path

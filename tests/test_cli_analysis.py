@@ -170,7 +170,10 @@ def test_sample_csv_workers_and_json(files, capsys):
                           "--range", "1e-4:1e4", "--json"])
     assert r["columns"][-10:][:4] == ["ec10", "ec50", "ec90", "hill_effective"]
     assert r["columns"][-1] == "saturated"
-    assert r["summary"]["hill_effective"]["count"] == 40
+    # curve statistics are over the curves that saturated within the range only
+    curves = r["curves"]
+    assert curves["saturated"] + curves["unsaturated"] + curves["flat"] == 40
+    assert r["summary"]["hill_effective"]["count"] == curves["saturated"]
     rows = np.array(r["rows"], dtype=float)
     # every sample is single-site binding s/(K + s), K = koff/kon: normalized to its limits
     # 0 and 1, EC_q = K q/(1 - q), then n_H = ln 81 / ln(ec90/ec10) (Goldbeter & Koshland, PNAS 78 (1981) 6840)
