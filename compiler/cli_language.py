@@ -8,7 +8,6 @@ which the main command prints as one line with exit status 2.
 
 from __future__ import annotations
 
-import sys
 
 
 def cmd_equilibrium(args) -> int:

@@ -102,9 +102,6 @@ def draw(scheme, path, *, highlight: str = "none", labels: str = "auto"):
     marked = _highlighted(scheme, highlight)
     present = {(e.source, e.target) for e in scheme.edges}
     show_labels = labels == "all" or (labels == "auto" and len(scheme.edges) <= 40)
-    xs = [p[0] for p in pos.values()]
-    ys = [p[1] for p in pos.values()]
-    span = max(max(xs) - min(xs), max(ys) - min(ys), 1e-9)
     size = min(16.0, max(6.0, 0.9 * math.sqrt(n) * 2))
     fig, ax = plt.subplots(figsize=(size, size * 0.8))
     node_size = 900 if n <= 40 else 300
