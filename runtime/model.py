@@ -3,12 +3,17 @@
 A CompiledModel holds a compiled kernel (any back end) that maps rows of
 symbol values to its outputs (steady state, observables, derivatives), a
 small numpy kernel for the edge rates, and the metadata to read both. It
-validates inputs (shape, finiteness, positivity), broadcasts dictionaries,
-and guards the straight-line formulas: rows whose result is not a finite
-probability vector (extreme rates beyond the range of float64 products) are
-recomputed by the looped subtraction-free elimination of
-:mod:`treeflux.runtime.numeric`, which works on ratios and cannot overflow
-where the answer itself is representable.
+validates inputs (shape, finiteness, the sign rule of each symbol: a declared
+min below zero lets a symbol be negative), broadcasts dictionaries, and
+guards every output through one function, :meth:`CompiledModel._guarded`:
+the straight-line kernels carry an exact range test of the labels folded
+into their normaliser (see ``treeflux.compiler.frontend.guard_factor``), so a
+row whose intermediates could underflow, a zero rate (an absent edge) or a
+non-finite value makes its row sum differ from 1. Such rows are recomputed by
+the looped subtraction-free elimination of :mod:`treeflux.runtime.numeric`
+(steady_state, observables, basis) or refused (input_derivatives). Rates
+that evaluate negative, NaN or infinite are refused with the file, the row and
+the edge by its state names.
 
 All values are model predictions of the scheme, not measurements.
 """
@@ -52,8 +57,9 @@ class CompiledModel:
 
     Parameters are given as an (N, len(symbols)) array in :attr:`symbols`
     order, or as a dict name → scalar or (N,) array (missing names take the
-    model file's values). Rates must be finite; parameters positive, inputs
-    (concentrations) non-negative.
+    model file's values). Symbols must be finite; parameters positive and
+    inputs (concentrations) non-negative unless their declared min is below
+    zero. Evaluated rates must be positive and finite (zero: an absent edge).
     """
 
     def __init__(self, info: ModelInfo, kernel: Kernel | None, label_kernel: Kernel, *,
