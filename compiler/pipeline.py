@@ -231,7 +231,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                 weights[scheme.index()[state]][k] = weight
     else:
         t0 = time.perf_counter()
-        fn, info = build(scheme, method=chosen.method,
+        fn, info = build(scheme, method=chosen.method, guard=True,
                          order=chosen.numeric.order if chosen.numeric is not None else None)
         comps = info.components
         timings["frontend"] = time.perf_counter() - t0

@@ -269,9 +269,8 @@ def test_factor_never_makes_a_function_worse():
 def test_normalize_uses_one_reciprocal_per_denominator():
     fn = front("trees", hypercube_scheme(2))
     out = normalize(canonical(fn))
-    # the 8 scaled labels ℓ/s and the 4 quotients ρ_i/Σρ: two reciprocals remain,
-    # plus the one division of the in-kernel range guard (frontend.guard_factor)
-    assert ir.count_ops(out.graph, out.group("p"))["div"] == 3
+    # the 8 scaled labels ℓ/s and the 4 quotients ρ_i/Σρ: two reciprocals remain
+    assert ir.count_ops(out.graph, out.group("p"))["div"] == 2
     xs = points(fn, random.Random(3), 1)[0]
     assert values(out, xs) == values(fn, xs)
 

@@ -115,11 +115,14 @@ def guard_factor(g: Graph, labels: list[int], bounds) -> tuple[int | None, dict]
     return factor, {"max_label_ratio": f"2^{spread_exp}", "min_label": f"2^{floor_exp}"}
 
 
-def build(scheme: Scheme, *, method: str, scale: bool = True, order=None) -> tuple[Function, BuildInfo]:
+def build(scheme: Scheme, *, method: str, scale: bool = True, order=None,
+          guard: bool = False) -> tuple[Function, BuildInfo]:
     """Lower ``scheme`` to a Function with the chosen front end (no size checks here).
 
     ``order`` is an elimination order of all states, for a scheme that is one
-    strongly connected component (the planner has already computed it)."""
+    strongly connected component (the planner has already computed it).
+    ``guard`` folds the run-time range test (:func:`guard_factor`) into the
+    normaliser of p: compiled kernels want it; symbolic uses do not."""
     if method not in METHODS:
         raise ValueError(f"unknown front end {method!r}")
     scheme.validate()
@@ -158,7 +161,7 @@ def build(scheme: Scheme, *, method: str, scale: bool = True, order=None) -> tup
             rho[s] = x[a]
         rho_all.append(rho)
         x_blocks.append((comp, x))
-    guard, info.guard = guard_factor(g, labels, bounds)
+    guard, info.guard = guard_factor(g, labels, bounds) if guard else (None, {})
     p_blocks = []
     for comp, x in x_blocks:
         total = g.mul(g.add(*x), guard) if guard is not None else g.add(*x)
