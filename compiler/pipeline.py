@@ -367,8 +367,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                 weights[scheme.index()[state]][k] = weight
     else:
         t0 = time.perf_counter()
-        fn, info = build(scheme, method=chosen.method,
-                         order=chosen.order)
+        fn, info = build(scheme, method=chosen.method, guard=True, order=chosen.order)
         comps = info.components
         timings["frontend"] = time.perf_counter() - t0
         kept = ir.Function(fn.graph, fn.n_inputs, [], labels=fn.labels)
@@ -389,6 +388,8 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         kernel = back.build(ir.compact(fn), name=name)
         timings["backend"] = time.perf_counter() - t0
         groups = dict(fn.groups)
+    from .frontend import rates_may_be_negative
+
     sym = {s.name: s for s in scheme.parameters + scheme.inputs}
     info = ModelInfo(
         name=scheme.name, states=scheme.states,
@@ -400,7 +401,9 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         bounds={k: (v.min, v.max) for k, v in sym.items()},
         method=chosen.method, backend=backend if kernel is not None else "numeric",
         log_jacobian=log_jacobian,
-        tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0)
+        tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0,
+        origin=str(scheme.origin), guarded=kernel is not None,
+        signed_rates=rates_may_be_negative(scheme))
     profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report,
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:

@@ -10,14 +10,20 @@
  *     d = sum of out slots; keep d; scale out slots by 1/d;
  *     for every triple (dst, a, b) of the pivot: V[dst] += V[a] * V[b],
  *     a = in-edge i->k, b = scaled out-edge k->j, dst = edge i->j (i != j).
+ * Before that, each set's rates are scaled by a power of two (the steady
+ * state does not change) so the largest is near 2^1019 / m.
  * Back-substitution in reverse: x_root = 1,
  *     x_k = (sum over in-edges of x_i * q(i->k)) / d_k,
- * renormalising every x computed so far by a power of two whenever one
- * exceeds 2^HUGE_EXP, so ratios of Kirchhoff minors never overflow.
+ * with a binary exponent carried per value (mantissa in [1, 2)), so no x
+ * underflows or overflows before the final normalisation p = x / sum x.
  * Nothing is subtracted anywhere.
  *
- * Status: 0 ok; 1 bad rate; 2 zero or non-finite pivot; 3 overflow;
- * 4 out of memory. err = {status, row, edge or state}.
+ * A set whose scaled rates, censored rates or scaled out-rates fall below
+ * 2^-960 (out-rates: below the normal range) may have lost digits to
+ * underflow; its output row is set to NaN and the caller recomputes it in
+ * extended range.
+ *
+ * Status: 0 ok; 1 bad rate; 4 out of memory. err = {status, row, edge or state}.
  */
 #include <float.h>
 #include <math.h>
@@ -26,7 +32,24 @@
 #include <string.h>
 
 #define LANES 8
-#define HUGE_EXP 128
+#define TINY 0x1p-960
+
+/* Exponent and mantissa of normal positive doubles, lane by lane, by their
+ * bits; POW2(c) builds 2^c for integer c in [-1022, 1023]. */
+#define EXPO(x) ((((i8)(x)) >> 52) - 1023)
+#define MANT(x) ((v8)((((i8)(x)) & 0x000FFFFFFFFFFFFFLL) | 0x3FF0000000000000LL))
+#define POW2(c) ((v8)(((c) + 1023) << 52))
+#define SELI(mask, a, b) (((mask) & (a)) | (~(mask) & (b)))
+#define MAXI(a, b) SELI((a) > (b), (a), (b))
+#define MAXV(a, b) ((v8)SELI((a) >= (b), (i8)(a), (i8)(b)))
+
+static inline int64_t LOG2M(int64_t m)
+{
+    int64_t r = 0;
+    while (((int64_t)1 << r) < m)
+        r++;
+    return r;
+}
 
 typedef double v8 __attribute__((vector_size(LANES * sizeof(double))));
 typedef int64_t i8 __attribute__((vector_size(LANES * sizeof(int64_t))));
@@ -122,86 +145,120 @@ static int64_t block(const gth_tape *t, const double *rates, double *out, int64_
     }
     memset(V + m, 0, (size_t)(ns - m) * sizeof(v8));
 
+    /* Scale each set's rates by a power of two so that its largest rate is
+     * near 2^(1019 - log2 m): the steady state is unchanged, every pivot and
+     * censored rate stays below 2^1021 (no overflow, normal reciprocals), and
+     * the small ones get the most headroom above the normal range. */
+    v8 hi = V[0];
+    for (int64_t e = 1; e < m; e++)
+        hi = MAXV(hi, V[e]);
+    i8 sh = 1019 - LOG2M(m) - EXPO(hi);
+    v8 f = POW2(sh);
+    for (int64_t e = 0; e < m; e++)
+        V[e] *= f;
+
+    /* A lane whose censored rates, scaled rates or in-rates fall below
+     * TINY (2^-960) may have lost digits to underflow: it is flagged (its
+     * output row is NaN) and recomputed by the caller in extended range. */
+    const v8 tiny = {TINY, TINY, TINY, TINY, TINY, TINY, TINY, TINY};
+    const v8 dmin = {DBL_MIN, DBL_MIN, DBL_MIN, DBL_MIN, DBL_MIN, DBL_MIN, DBL_MIN, DBL_MIN};
+    i8 ok = {-1, -1, -1, -1, -1, -1, -1, -1};
     for (int64_t p = 0; p < np_; p++) {
         const int32_t *os = t->out_slot + t->out_ptr[p];
         const int64_t no = t->out_ptr[p + 1] - t->out_ptr[p];
         v8 d = {0};
-        for (int64_t q = 0; q < no; q++)
+        for (int64_t q = 0; q < no; q++) {
             d += V[os[q]];
-        int zero = 0;
-        for (int l = 0; l < LANES; l++)
-            zero |= !(d[l] > 0.0 && d[l] <= DBL_MAX);
-        if (zero) {
-            for (int l = 0; l < nl; l++)
-                if (!(d[l] > 0.0 && d[l] <= DBL_MAX))
-                    return fail(err, 2, b + l, t->piv_state[p]);
+            ok &= V[os[q]] >= tiny;
         }
+        ok &= d <= DBL_MAX;
         D[p] = d;
         v8 r = 1.0 / d;
-        for (int64_t q = 0; q < no; q++)
+        for (int64_t q = 0; q < no; q++) {
             V[os[q]] *= r;
+            ok &= V[os[q]] >= dmin;
+        }
         const int32_t *u = t->upd + 3 * t->upd_ptr[p];
         const int64_t nu = t->upd_ptr[p + 1] - t->upd_ptr[p];
         for (int64_t q = 0; q < nu; q++, u += 3)
             V[u[0]] += V[u[1]] * V[u[2]];
     }
 
+    /* Back-substitution with a binary exponent per value: x_k = XM[k] *
+     * 2^XE[k], XM in [1, 2). x_k = (sum_i x_i q(i->k)) / d_k is summed at the
+     * largest term's exponent, so no x underflows or overflows here; only the
+     * final normalisation rounds the tiny probabilities. */
+    v8 *XM = X;
+    i8 *XE = (i8 *)(X + n);
     const v8 one = {1, 1, 1, 1, 1, 1, 1, 1};
-    const double huge = ldexp(1.0, HUGE_EXP);
-    X[t->root] = one;
+    const i8 zero_i = {0};
+    const i8 floor_ = {-1022, -1022, -1022, -1022, -1022, -1022, -1022, -1022};
+    XM[t->root] = one;
+    XE[t->root] = zero_i;
     for (int64_t p = np_ - 1; p >= 0; p--) {
         const int64_t k = t->piv_state[p];
         const int32_t *is = t->in_slot + t->in_ptr[p];
         const int32_t *src = t->in_src + t->in_ptr[p];
         const int64_t ni = t->in_ptr[p + 1] - t->in_ptr[p];
-        v8 acc = {0};
-        for (int64_t a = 0; a < ni; a++)
-            acc += X[src[a]] * V[is[a]];
-        v8 x = acc / D[p];
-        int big = 0;
-        for (int l = 0; l < LANES; l++)
-            big |= !(x[l] <= huge);
-        if (big) {
-            for (int l = 0; l < LANES; l++) {
-                if (x[l] <= huge)
-                    continue;
-                if (!isfinite(acc[l])) {
-                    if (l < nl)
-                        return fail(err, 3, b + l, k);
-                    x[l] = 1.0;      /* padding lane: value unused */
-                    continue;
-                }
-                int e = ilogb(acc[l]) - ilogb(D[p][l]);
-                double *Xs = (double *)X;
-                Xs[t->root * LANES + l] = ldexp(Xs[t->root * LANES + l], -e);
-                for (int64_t q = p + 1; q < np_; q++) {
-                    int64_t s = t->piv_state[q];
-                    Xs[s * LANES + l] = ldexp(Xs[s * LANES + l], -e);
-                }
-                x[l] = ldexp(acc[l], -e) / D[p][l];
-            }
+        if (ni == 0) {                          /* nothing flows in: x_k = 0 */
+            XM[k] = (v8){0};
+            XE[k] = floor_ * ((int64_t)1 << 30);
+            continue;
         }
-        X[k] = x;
+        i8 top = XE[src[0]] + EXPO(XM[src[0]] * V[is[0]]);
+        for (int64_t a = 0; a < ni; a++) {
+            v8 q = V[is[a]];
+            ok &= q >= tiny;
+            i8 g = XE[src[a]] + EXPO(XM[src[a]] * q);
+            top = MAXI(g, top);
+        }
+        v8 acc = {0};
+        for (int64_t a = 0; a < ni; a++) {
+            v8 term = XM[src[a]] * V[is[a]];
+            i8 c = XE[src[a]] + EXPO(term) - top;
+            c = MAXI(c, floor_);
+            acc += MANT(term) * POW2(c);
+        }
+        v8 x = acc / D[p];
+        XM[k] = MANT(x);
+        XE[k] = top + EXPO(x);
     }
 
+    i8 top = XE[0];
+    for (int64_t s = 1; s < n; s++)
+        top = MAXI(XE[s], top);
     v8 sum = {0};
-    for (int64_t s = 0; s < n; s++)
-        sum += X[s];
+    for (int64_t s = 0; s < n; s++) {
+        i8 c = XE[s] - top;
+        c = MAXI(c, floor_);
+        sum += XM[s] * POW2(c);
+    }
     v8 inv = 1.0 / sum;
+    for (int64_t s = 0; s < n; s++) {      /* p = XM * inv * 2^c, c split in two normal factors */
+        i8 c = XE[s] - top;
+        i8 c1 = MAXI(c, floor_);
+        i8 c2 = c - c1;
+        c2 = MAXI(c2, floor_);
+        XM[s] = XM[s] * inv * POW2(c1) * POW2(c2);
+    }
+    for (int l = 0; l < LANES; l++)
+        if (!ok[l])
+            for (int64_t s = 0; s < n; s++)
+                ((double *)XM)[s * LANES + l] = NAN;
     int64_t s0 = 0;
     for (; s0 + LANES <= n; s0 += LANES) {      /* eight states of eight sets at a time */
         v8 r[LANES];
         for (int k = 0; k < LANES; k++)
-            r[k] = X[s0 + k] * inv;
+            r[k] = XM[s0 + k];
         transpose8(r);
         for (int l = 0; l < nl; l++)
             memcpy(out + (b + l) * n + s0, &r[l], sizeof(v8));
     }
-    const double *Xs = (const double *)X;
+    const double *Xs = (const double *)XM;
     for (int l = 0; l < nl; l++) {
         double *o = out + (b + l) * n;
         for (int64_t s = s0; s < n; s++)
-            o[s] = Xs[s * LANES + l] * inv[l];
+            o[s] = Xs[s * LANES + l];
     }
     return 0;
 }
@@ -211,7 +268,7 @@ int64_t gth_solve(const gth_tape *t, const double *rates, double *out,
 {
     v8 *V = grab(t->n_slots);
     v8 *D = grab(t->n_piv);
-    v8 *X = grab(t->n);
+    v8 *X = grab(2 * t->n);
     int64_t status = 0;
     if (!V || !D || !X) {
         status = fail(err, 4, row0, 0);

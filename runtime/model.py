@@ -3,12 +3,17 @@
 A CompiledModel holds a compiled kernel (any back end) that maps rows of
 symbol values to its outputs (steady state, observables, derivatives), a
 small numpy kernel for the edge rates, and the metadata to read both. It
-validates inputs (shape, finiteness, positivity), broadcasts dictionaries,
-and guards the straight-line formulas: rows whose result is not a finite
-probability vector (extreme rates beyond the range of float64 products) are
-recomputed by the looped subtraction-free elimination of
-:mod:`treeflux.runtime.numeric`, which works on ratios and cannot overflow
-where the answer itself is representable.
+validates inputs (shape, finiteness, the sign rule of each symbol: a declared
+min below zero lets a symbol be negative), broadcasts dictionaries, and
+guards every output through one function, :meth:`CompiledModel._guarded`:
+the straight-line kernels carry an exact range test of the labels folded
+into their normaliser (see ``treeflux.compiler.frontend.guard_factor``), so a
+row whose intermediates could underflow, a zero rate (an absent edge) or a
+non-finite value makes its row sum differ from 1. Such rows are recomputed by
+the looped subtraction-free elimination of :mod:`treeflux.runtime.numeric`
+(steady_state, observables, basis) or refused (input_derivatives). Rates
+that evaluate negative, NaN or infinite are refused with the file, the row and
+the edge by its state names.
 
 All values are model predictions of the scheme, not measurements.
 """
@@ -41,7 +46,10 @@ class ModelInfo:
     method: str = ""
     backend: str = ""
     log_jacobian: bool = False
-    tree_edges: int = 0  # trees method: edges per tree (n−1); guards underflow
+    tree_edges: int = 0  # trees method: edges per tree (n−1); guards underflow (kernels without guard)
+    origin: str = ""     # the model file (or "scheme"): named in every error
+    guarded: bool = False        # p carries the in-kernel range guard (frontend.guard_factor)
+    signed_rates: bool = False   # some rate may evaluate negative: rates are checked per row
     # One label tree per edge for the multiprecision derivative path
     # (runtime.sensitivity): ["num", "p/q"], ["sym", column], [op, a(, b)].
     label_trees: list = field(default_factory=list)
@@ -52,8 +60,9 @@ class CompiledModel:
 
     Parameters are given as an (N, len(symbols)) array in :attr:`symbols`
     order, or as a dict name → scalar or (N,) array (missing names take the
-    model file's values). Rates must be finite; parameters positive, inputs
-    (concentrations) non-negative.
+    model file's values). Symbols must be finite; parameters positive and
+    inputs (concentrations) non-negative unless their declared min is below
+    zero. Evaluated rates must be positive and finite (zero: an absent edge).
     """
 
     def __init__(self, info: ModelInfo, kernel: Kernel | None, label_kernel: Kernel, *,
@@ -140,31 +149,71 @@ class CompiledModel:
         finite = np.isfinite(arr)
         if not finite.all():
             r, c = np.argwhere(~finite)[0]
-            raise EvaluationError(f"row {r}: symbol {self.symbols[c]!r} is not finite ({arr[r, c]})")
-        # a symbol declared with min < 0 may be negative (rates must still be positive)
-        signed = np.array([(self.info.bounds.get(s) or (None,))[0] is not None
-                           and self.info.bounds[s][0] < 0 for s in self.symbols], dtype=bool)
-        bad = (arr[:, :n_par] <= 0) & ~signed[:n_par]
-        if bad.any():
-            r, c = np.argwhere(bad)[0]
-            raise EvaluationError(f"row {r}: parameter {self.symbols[c]!r} must be positive, got {arr[r, c]}")
-        neg = (arr[:, n_par:] < 0) & ~signed[n_par:]
-        if neg.any():
-            r, c = np.argwhere(neg)[0]
-            raise EvaluationError(f"row {r}: input {self.symbols[n_par + c]!r} must be non-negative, "
-                                  f"got {arr[r, n_par + c]}")
+            raise EvaluationError(f"{self._where()}row {r}: symbol {self.symbols[c]!r} is not finite "
+                                  f"({float(arr[r, c])})")
+        for c, name in enumerate(self.symbols):
+            low, strict = self._symbol_floor(c, n_par)
+            col = arr[:, c]
+            bad = (col <= low) if strict else (col < low)
+            if bad.any():
+                r = int(np.argmax(bad))
+                kind = "parameter" if c < n_par else "input"
+                need = "positive" if strict and low == 0 else "non-negative" if low == 0 else f"at least {low}"
+                raise EvaluationError(f"{self._where()}row {r}: {kind} {name!r} must be {need}, "
+                                      f"got {float(col[r])}")
 
-    @staticmethod
-    def _quick_ok(arr: np.ndarray, n_par: int) -> bool:
+    def _symbol_floor(self, c: int, n_par: int) -> tuple[float, bool]:
+        """(lowest allowed value, strict) of symbol c: a declared min below 0
+        lets the symbol be negative (voltages, free energies) — rates are
+        checked instead; otherwise parameters > 0 and inputs ≥ 0."""
+        low = self.info.bounds.get(self.symbols[c], (None, None))[0] if self.info.bounds else None
+        if low is not None and low < 0:
+            return -np.inf, False
+        if low is not None and low == 0:
+            return 0.0, False
+        return 0.0, c < n_par
+
+    def _quick_ok(self, arr: np.ndarray, n_par: int) -> bool:
         """Read-only min/max reductions (NaN fails every comparison); the
         detailed search for the offending entry runs only when this fails."""
         par, inp = arr[:, :n_par], arr[:, n_par:]
+        if any(b[0] is not None and b[0] < 0 for b in (self.info.bounds or {}).values()):
+            return bool(np.isfinite(arr.max())) and bool(np.isfinite(arr.min())) and not any(
+                self._floor_violated(arr, c, n_par) for c in range(arr.shape[1]))
         ok = True
         if par.size:
             ok = bool(par.min() > 0) and bool(par.max() < np.inf)
         if ok and inp.size:
             ok = bool(inp.min() >= 0) and bool(inp.max() < np.inf)
         return ok
+
+    def _floor_violated(self, arr, c, n_par) -> bool:
+        low, strict = self._symbol_floor(c, n_par)
+        if low == -np.inf:
+            return False
+        m = arr[:, c].min()
+        return bool(m <= low) if strict else bool(m < low)
+
+    def _where(self) -> str:
+        return f"{self.info.origin}: " if self.info.origin else ""
+
+    def _edge_name(self, e: int) -> str:
+        i, j = self.info.edges[e]
+        return f"{self.info.states[i]}->{self.info.states[j]}"
+
+    def _check_rates(self, rates: np.ndarray, rows: np.ndarray | None = None) -> None:
+        """Refuse a rate that is negative, NaN or infinite, naming the file,
+        the row and the edge by its state names. Zero rates are absent edges."""
+        ok = rates >= 0
+        ok &= rates < np.inf
+        if ok.all():
+            return
+        r, e = np.argwhere(~ok)[0]
+        row = int(rows[r]) if rows is not None else int(r)
+        v = float(rates[r, e])
+        what = "is not a number" if v != v else f"evaluates to {v}"
+        raise EvaluationError(f"{self._where()}row {row}: the rate of {self._edge_name(int(e))} {what}; "
+                              "rates must be positive and finite")
 
     # ------------------------------------------------------------ evaluation
     def labels(self, X) -> np.ndarray:
@@ -184,6 +233,36 @@ class CompiledModel:
             raise EvaluationError(f"the scheme has {len(self.info.components)} terminal components "
                                   f"({comps}), so its steady state is not unique; use basis(X)")
 
+    # Row-sum tolerance of the straight-line outputs. The in-kernel guard
+    # (frontend.guard_factor) makes a failing set's sum differ from 1 by at
+    # least 2^-38, so this also catches every set outside the safe range.
+    ROW_SUM_TOL = 2.0 ** -40
+
+    def _guarded(self, arr, threads=None, out=None):
+        """The one checked evaluation every output goes through.
+
+        Runs the kernel and returns ``(outputs, bad)``: ``bad`` marks the rows
+        whose steady state (every block of the basis) is not a probability
+        vector to working accuracy — non-finite, rows outside the range where
+        the straight-line formulas are safe (the in-kernel guard), zero rates
+        (absent edges). Those rows must be recomputed (:meth:`_numeric`) or
+        refused by the caller. Rates are checked first when some rate may
+        evaluate negative (a subtraction in a label, a signed symbol)."""
+        if self.info.signed_rates:
+            self._check_rates(self.label_kernel(arr))
+        outputs = self._outputs(arr, threads, out)
+        n, c = len(self.states), len(self.info.components)
+        key = "p" if "p" in self.info.groups else "basis"
+        a, b = self.info.groups[key]
+        ones = np.ones(n)
+        bad = np.zeros(arr.shape[0], dtype=bool)
+        for k in range(c if key == "basis" else 1):
+            block = outputs[:, a + k * n:a + (k + 1) * n]
+            bad |= ~(np.abs(block @ ones - 1.0) <= self.ROW_SUM_TOL)
+        if not self.info.guarded and self.info.tree_edges:
+            bad |= self._tree_underflow(arr)          # kernels compiled before the in-kernel guard
+        return outputs, bad
+
     def steady_state(self, X, *, out=None, threads=None) -> np.ndarray:
         """Steady-state probabilities (N, n_states) in :attr:`states` order.
 
@@ -201,16 +280,12 @@ class CompiledModel:
             a, b = self.info.groups["p"]
             direct = (out is not None and (a, b) == (0, self.kernel.n_outputs)
                       and out.flags.c_contiguous)
-            P = self._outputs(arr, threads, out if direct else None)[:, a:b]
-            # Row sums by one matrix-vector product (much faster than
-            # sum(axis=1) on narrow rows); a non-finite entry spoils its sum.
-            bad = ~(np.abs(P @ np.ones(P.shape[1]) - 1.0) <= 1e-9)
-            if self.info.tree_edges:
-                bad |= self._tree_underflow(arr)
+            outputs, bad = self._guarded(arr, threads, out if direct else None)
+            P = outputs[:, a:b]
             if bad.any():
                 if not direct:
                     P = np.array(P)
-                P[bad] = self._numeric(arr[bad])
+                P[bad] = self._numeric(arr[bad], rows=np.flatnonzero(bad))
         if out is not None:
             if P is not out:
                 out[...] = P
@@ -219,27 +294,29 @@ class CompiledModel:
 
     def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
         """Rows where a tree product of labels scaled by their maximum could
-        fall below the normal float64 range: (min/max)^(n−1) < 1e-290. Those
-        rows go to the looped elimination, which works on ratios. (Zero rates
-        are absent edges, not small ones.)"""
+        fall below the normal float64 range: (min/max)^(n−1) < 1e-290 (only
+        for kernels compiled before the guard moved into the kernel)."""
         rates = self.label_kernel(arr)
         positive = np.where(rates > 0, rates, np.nan)
         with np.errstate(all="ignore"):
             spread = np.log10(np.nanmax(positive, axis=1)) - np.log10(np.nanmin(positive, axis=1))
         return self.info.tree_edges * np.nan_to_num(spread) > 290.0
 
-    def _numeric(self, arr: np.ndarray) -> np.ndarray:
-        """The looped subtraction-free elimination on every row of ``arr``.
+    def _numeric(self, arr: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+        """The looped subtraction-free elimination on every row of ``arr``
+        (``rows``: their indices in the caller's input, for messages).
 
-        A zero rate is an absent edge (an input concentration of zero): rows
-        with zero rates are solved on the graph of their positive edges, one
-        plan per pattern of zeros, provided that graph still has a unique
-        terminal component (the others get probability zero)."""
+        Rates are checked (negative, NaN or infinite: refused with the edge's
+        name). A zero rate is an absent edge (an input concentration of
+        zero): rows with zero rates are solved on the graph of their positive
+        edges, one plan per pattern of zeros, provided that graph still has a
+        unique terminal component (the others get probability zero)."""
         from .numeric import EliminationPlan
 
+        rates = self.label_kernel(arr)
+        self._check_rates(rates, rows)
         if self.plan is None:
             self.plan = EliminationPlan(len(self.states), self.info.edges)
-        rates = self.label_kernel(arr)
         zero = rates == 0
         rows_with_zero = zero.any(axis=1)
         if not rows_with_zero.any():
@@ -248,16 +325,17 @@ class CompiledModel:
         if (~rows_with_zero).any():
             P[~rows_with_zero] = self.plan.steady_state(rates[~rows_with_zero])
         for pattern in np.unique(zero[rows_with_zero], axis=0):
-            rows = np.flatnonzero(rows_with_zero & (zero == pattern).all(axis=1))
-            comp, local_edges, keep = self._positive_subgraph(pattern, int(rows[0]))
+            sel = np.flatnonzero(rows_with_zero & (zero == pattern).all(axis=1))
+            first = int(rows[sel[0]]) if rows is not None else int(sel[0])
+            comp, local_edges, keep = self._positive_subgraph(pattern, first)
             sub = self._zero_plans.get(pattern.tobytes())
             if sub is None:
                 sub = self._zero_plans[pattern.tobytes()] = (
                     EliminationPlan(len(comp), local_edges) if len(comp) > 1 else None)
             if sub is None:
-                P[rows, comp[0]] = 1.0
+                P[sel, comp[0]] = 1.0
             else:
-                P[np.ix_(rows, comp)] = sub.steady_state(rates[np.ix_(rows, keep)])
+                P[np.ix_(sel, comp)] = sub.steady_state(rates[np.ix_(sel, keep)])
         return P
 
     def _positive_subgraph(self, zero_edges: np.ndarray, row: int):
@@ -271,9 +349,8 @@ class CompiledModel:
         try:
             comp = sorted(_terminal_states(n, out_adj))
         except EvaluationError:
-            names = [f"{self.states[i]}->{self.states[j]}"
-                     for e, (i, j) in enumerate(self.info.edges) if zero_edges[e]]
-            raise EvaluationError(f"row {row}: with a zero rate on {', '.join(names[:4])} the scheme has "
+            names = [self._edge_name(e) for e in range(len(self.info.edges)) if zero_edges[e]]
+            raise EvaluationError(f"{self._where()}row {row}: with a zero rate on {', '.join(names[:4])} the scheme has "
                                   "several terminal components, so its steady state is not unique") from None
         local = {s: a for a, s in enumerate(comp)}
         keep = [e for e, (i, j) in enumerate(self.info.edges)
@@ -291,7 +368,42 @@ class CompiledModel:
                                   "straight-line method (trees or elimination)")
         key = "p" if c == 1 else "basis"
         a, b = self.info.groups[key]
-        return self._outputs(arr, threads)[:, a:b].reshape(arr.shape[0], c, n)
+        outputs, bad = self._guarded(arr, threads)
+        B = np.array(outputs[:, a:b]).reshape(arr.shape[0], c, n)
+        if bad.any():
+            rows = np.flatnonzero(bad)
+            B[rows] = (self._numeric(arr[rows], rows)[:, None, :] if c == 1
+                       else self._numeric_basis(arr[rows], rows))
+        return B
+
+    def _numeric_basis(self, arr: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        """Basis rows on the looped path: each terminal component solved on
+        its own edges (a component is closed, so its steady state is the
+        chain restricted to it)."""
+        from .numeric import EliminationPlan
+
+        rates = self.label_kernel(arr)
+        self._check_rates(rates, rows)
+        n, comps = len(self.states), self.info.components
+        B = np.zeros((len(arr), len(comps), n))
+        for k, comp in enumerate(comps):
+            if len(comp) == 1:
+                B[:, k, comp[0]] = 1.0
+                continue
+            local = {s: a for a, s in enumerate(comp)}
+            keep = [e for e, (i, j) in enumerate(self.info.edges) if i in local and j in local]
+            zero = rates[:, keep] == 0
+            if zero.any():
+                r = int(np.argwhere(zero)[0][0])
+                names = [self._edge_name(keep[e]) for e in np.flatnonzero(zero[r])]
+                raise EvaluationError(f"{self._where()}row {int(rows[r])}: a zero rate on {', '.join(names[:4])} "
+                                      "inside a terminal component; basis() needs positive rates there")
+            plan = self._zero_plans.get(("basis", k))
+            if plan is None:
+                edges = [(local[self.info.edges[e][0]], local[self.info.edges[e][1]]) for e in keep]
+                plan = self._zero_plans[("basis", k)] = EliminationPlan(len(comp), edges)
+            B[np.ix_(np.arange(len(arr)), [k], comp)] = plan.steady_state(rates[:, keep])[:, None, :]
+        return B
 
     def observables(self, X, *, threads=None) -> np.ndarray:
         """Observables (N, n_observables): weighted sums of state probabilities."""
@@ -299,14 +411,15 @@ class CompiledModel:
             raise EvaluationError("the model declares no observables")
         self._require_single()
         arr = self.as_array(X)
-        if self.kernel is not None and "obs" in self.info.groups:
-            a, b = self.info.groups["obs"]
-            out = self._outputs(arr, threads)
-            O = out[:, a:b]
-            pa, pb = self.info.groups["p"]
-            if np.isfinite(out[:, pa:pb]).all():
-                return np.ascontiguousarray(O)
-        return self.steady_state(arr) @ self.observable_weights
+        if self.kernel is None or "obs" not in self.info.groups:
+            return self.steady_state(arr, threads=threads) @ self.observable_weights
+        a, b = self.info.groups["obs"]
+        outputs, bad = self._guarded(arr, threads)
+        O = np.array(outputs[:, a:b])
+        if bad.any():
+            rows = np.flatnonzero(bad)
+            O[rows] = self._numeric(arr[rows], rows) @ self.observable_weights
+        return O
 
     @property
     def observable_weights(self) -> np.ndarray:
@@ -336,12 +449,10 @@ class CompiledModel:
         path of :mod:`.sensitivity`. A derivative beyond float64 is refused."""
         from .sensitivity import jacobian_rows
 
-        out = self._outputs(arr, threads)
+        out, redo = self._guarded(arr, threads)
         N, nsym = arr.shape[0], len(self.symbols)
         a, b = self.info.groups[group]
         J = np.array(out[:, a:b]).reshape(N, -1, nsym)
-        pa, pb = self.info.groups["p"]
-        redo = self._untrusted_rows(arr, out[:, pa:pb])
         zero = np.zeros_like(arr, dtype=bool)
         if not self.info.log_jacobian:
             zero = arr == 0
@@ -366,22 +477,24 @@ class CompiledModel:
                                   f"range at these values")
         return J
 
-    def _untrusted_rows(self, arr, P) -> np.ndarray:
-        """Rows whose kernel steady state the guard of :meth:`steady_state`
-        would not return as it is (it recomputes them on the looped path)."""
-        bad = ~(np.abs(P @ np.ones(P.shape[1]) - 1.0) <= 1e-9)
-        if self.info.tree_edges:
-            bad |= self._tree_underflow(arr)
-        return bad
-
     def input_derivatives(self, X, *, observables: bool = False, threads=None):
         """(first, second) derivatives along the input named at compile time,
-        each (N, n_states), or (N, n_observables) with ``observables=True``."""
+        each (N, n_states), or (N, n_observables) with ``observables=True``.
+
+        Rows the straight-line formulas cannot evaluate safely (see
+        :meth:`steady_state`) are refused: the looped path has no derivatives."""
         prefix = "obs_" if observables else ""
         if prefix + "d1" not in self.info.groups:
             raise EvaluationError("compile with input_derivatives=NAME to get derivatives along an input")
         self._require_single()
-        out = self._outputs(self.as_array(X), threads)
+        arr = self.as_array(X)
+        out, bad = self._guarded(arr, threads)
+        if bad.any():
+            r = int(np.argmax(bad))
+            self._numeric(arr[r:r + 1], np.array([r]))       # names a bad rate or zero pattern, if any
+            raise EvaluationError(f"{self._where()}row {r}: the rates span too many orders of magnitude "
+                                  "(or a rate is zero) for the compiled derivatives; evaluate the steady "
+                                  "state there, or narrow the range")
         (a1, b1), (a2, b2) = self.info.groups[prefix + "d1"], self.info.groups[prefix + "d2"]
         return np.ascontiguousarray(out[:, a1:b1]), np.ascontiguousarray(out[:, a2:b2])
 

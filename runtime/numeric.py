@@ -61,7 +61,8 @@ SCORE_CAP = 1024               # above in-degree × out-degree, the fill score i
 # 512 rows took 57 µs on one thread and 73 µs on two; 4,096 rows 434 µs on one
 # and 321 µs on two — the break-even lies near 10^6 flops per thread.
 MIN_WORK_PER_THREAD = 1_000_000
-HUGE_EXP = 128                 # back-substitution renormalises when some x exceeds 2**128
+TINY = 2.0 ** -960             # below this a scaled or censored rate may have lost digits to underflow
+BIG = np.finfo(np.float64).max
 _KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno")
 
 # ---------------------------------------------------------------- structure
@@ -476,9 +477,13 @@ class EliminationPlan:
     -----
     State reduction of Grassmann, Taksar & Heyman [1]_ in continuous time
     (see the module docstring); entrywise relative accuracy follows from the
-    absence of subtraction [2]_. Back-substitution renormalises by powers of
-    two when a ratio x_k = ρ_k/ρ_root would exceed 2**128, so rates spread
-    over hundreds of orders of magnitude give finite results.
+    absence of subtraction [2]_. Each set's rates are scaled by a power of two
+    (its largest near 2**1019/m), back-substitution carries a binary exponent
+    per value, so no ratio x_k = ρ_k/ρ_root underflows or overflows before the
+    final normalisation. A set whose float64 intermediates fall near the
+    bottom of the normal range (rates spread over many hundreds of orders of
+    magnitude) is flagged by the kernel and recomputed by
+    :func:`exact_steady_state`.
     """
 
     def __init__(self, n, edges, *, order=None, backend=None):
@@ -561,6 +566,9 @@ class EliminationPlan:
             self._run_c(rates, out, threads)
         else:
             self._run_numpy(rates, out)
+        flagged = np.flatnonzero(np.isnan(out[:, self.order[-1]]))
+        for r in flagged:                      # underflow in float64: extended range
+            out[r] = exact_steady_state(self.n, self.edges, rates[r], self.order)
         return out
 
     def _raise(self, kind, row, what, rates):
@@ -568,11 +576,6 @@ class EliminationPlan:
             i, j = self.edges[what]
             raise EvaluationError(f"row {row}: rate of edge {what} ({i}->{j}) must be positive and "
                                   f"finite, got {rates[row, what]!r}")
-        if kind == 2:
-            raise EvaluationError(f"row {row}: the exit rate of state {what} vanished during elimination: "
-                                  "the rates leave the scheme not strongly connected (or underflow float64)")
-        if kind == 3:
-            raise EvaluationError(f"row {row}: the steady state overflows float64 near state {what}")
         raise EvaluationError(f"row {row}: out of memory for the elimination workspace")
 
     def _run_c(self, rates, out, threads):
@@ -610,44 +613,109 @@ class EliminationPlan:
             out[a:b] = self._numpy_block(rates[a:b], a)
 
     def _numpy_block(self, rates, row0):
+        """The tape on a block of rows in numpy, as the C kernel does it (see
+        gth_kernel.c): power-of-two scaling, underflow flags, exponents
+        carried through back-substitution. Flagged rows come back NaN."""
         t = self._tape
         n, m, N = self.n, self.m, rates.shape[0]
-        big = np.finfo(np.float64).max
         V = np.zeros((self.n_slots + 1, N))
         V[:m] = rates.T
+        V[:m] *= np.ldexp(1.0, 1019 - _log2_ceil(m) - np.frexp(V[:m].max(axis=0))[1] + 1)
+        ok = np.ones(N, dtype=bool)
         D = np.empty((n - 1, N))
         op, ip, up = t["out_ptr"], t["in_ptr"], t["upd_ptr"]
         for p in range(n - 1):
             oo = t["out_slot"][op[p]:op[p + 1]]
-            d = V[oo].sum(axis=0)
-            bad = ~((d > 0) & (d <= big))
-            if bad.any():
-                self._raise(2, row0 + int(np.argmax(bad)), int(t["piv_state"][p]), None)
+            vo = V[oo]
+            ok &= (vo >= TINY).all(axis=0)
+            d = vo.sum(axis=0)
+            ok &= d <= BIG
             D[p] = d
-            w = V[oo] * (1.0 / d)
+            with np.errstate(all="ignore"):
+                w = vo * (1.0 / d)
+            ok &= (w >= np.finfo(np.float64).tiny).all(axis=0)
             V[oo] = w
             tri = t["upd"][up[p]:up[p + 1]]
             if tri.size:
                 V[tri[:, 0]] += V[tri[:, 1]] * V[tri[:, 2]]
-        X = np.zeros((n, N))
+        XM = np.zeros((n, N))
+        XE = np.full((n, N), -(1 << 40), dtype=np.int64)
         root = self.order[-1]
-        X[root] = 1.0
-        huge = 2.0 ** HUGE_EXP
-        done = [root]
+        XM[root], XE[root] = 1.0, 0
         for p in range(n - 2, -1, -1):
             k = int(t["piv_state"][p])
             a, b = ip[p], ip[p + 1]
-            acc = (X[t["in_src"][a:b]] * V[t["in_slot"][a:b]]).sum(axis=0)
-            x = acc / D[p]
-            cols = np.flatnonzero(~(x <= huge))
-            if cols.size:
-                if not np.isfinite(acc[cols]).all():
-                    c = cols[~np.isfinite(acc[cols])][0]
-                    self._raise(3, row0 + int(c), k, None)
-                e = (np.frexp(acc[cols])[1] - np.frexp(D[p, cols])[1]).astype(np.int64)
-                sel = np.ix_(done, cols)
-                X[sel] = np.ldexp(X[sel], -e)
-                x[cols] = np.ldexp(acc[cols], -e) / D[p, cols]
-            X[k] = x
-            done.append(k)
-        return (X * (1.0 / X.sum(axis=0))).T
+            if a == b:
+                continue
+            q = V[t["in_slot"][a:b]]
+            ok &= (q >= TINY).all(axis=0)
+            src = t["in_src"][a:b]
+            term, e = np.frexp(XM[src] * q)
+            g = XE[src] + e
+            top = g.max(axis=0)
+            acc = np.ldexp(term, np.maximum(g - top, -4000)).sum(axis=0)
+            with np.errstate(all="ignore"):
+                mant, e = np.frexp(acc / D[p])
+            XM[k], XE[k] = mant, top + e
+        top = XE.max(axis=0)
+        shift = np.maximum(XE - top, -4000)
+        with np.errstate(all="ignore"):
+            P = np.ldexp(XM * (1.0 / np.ldexp(XM, shift).sum(axis=0)), shift)
+        P[:, ~ok] = np.nan
+        return P.T
+
+
+def _log2_ceil(m: int) -> int:
+    return max(int(m) - 1, 0).bit_length()
+
+
+def exact_steady_state(n, edges, rates, order=None) -> np.ndarray:
+    """Steady state of one rate vector by the same subtraction-free
+    elimination in 40-digit decimal arithmetic with an unbounded exponent
+    range: the path of last resort for sets whose float64 intermediates
+    underflow. Each result is correctly rounded from a value with a relative
+    error far below 1e-30 (nothing is subtracted)."""
+    from decimal import Context, Decimal
+
+    ctx = Context(prec=40, Emin=-10**9, Emax=10**9)
+    n, src, dst = _check_graph(n, edges)
+    out = [dict() for _ in range(n)]
+    inn = [dict() for _ in range(n)]
+    for i, j, r in zip(src, dst, rates):
+        v = ctx.create_decimal_from_float(float(r))
+        out[i][j] = v
+        inn[j][i] = v
+    if order is None:
+        order = elimination_order(n, list(zip(src, dst)))
+    saved = []
+    for k in order[:-1]:
+        d = ctx.create_decimal(0)
+        for v in out[k].values():
+            d = ctx.add(d, v)
+        if not d > 0:
+            raise EvaluationError(f"the exit rate of state {k} vanished: the rates leave the scheme "
+                                  "without a unique steady state")
+        w = {j: ctx.divide(v, d) for j, v in out[k].items()}
+        ins = dict(inn[k])
+        for i, qik in ins.items():
+            del out[i][k]
+            for j, wj in w.items():
+                if j != i:
+                    add = ctx.multiply(qik, wj)
+                    out[i][j] = ctx.add(out[i][j], add) if j in out[i] else add
+                    inn[j][i] = out[i][j]
+        for j in w:
+            del inn[j][k]
+        out[k], inn[k] = {}, {}
+        saved.append((k, ins, d))
+    x = [ctx.create_decimal(0)] * n
+    x[order[-1]] = ctx.create_decimal(1)
+    for k, ins, d in reversed(saved):
+        acc = ctx.create_decimal(0)
+        for i, q in ins.items():
+            acc = ctx.add(acc, ctx.multiply(x[i], q))
+        x[k] = ctx.divide(acc, d)
+    total = ctx.create_decimal(0)
+    for v in x:
+        total = ctx.add(total, v)
+    return np.array([float(ctx.divide(v, total)) for v in x])

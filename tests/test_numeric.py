@@ -211,16 +211,23 @@ def test_bad_rates_name_row_and_edge():
         plan.steady_state(np.ones((3, 20)), out=np.empty((3, 7)))
 
 
-def test_underflowing_pivot_is_refused_with_row():
+def test_underflowing_pivot_is_recomputed_in_extended_range():
     # 0 -> 1 at 1e-200, 1 -> 0 at 1e200, 1 -> 2 at 1e-200, 2 -> 0 at 1: eliminating
-    # 1 first gives q(0->2) = 1e-200 * 1e-200 / 1e200 = 0 in float64, so the exit
-    # rate of 0 vanishes although every rate is positive.
+    # 1 first gives q(0->2) = 1e-200 * 1e-200 / 1e200 = 1e-600, below float64.
+    # The kernel flags the set and it is recomputed in extended range; the
+    # reference is mpmath at 400 digits (raised until two solves agree).
     edges = [(0, 1), (1, 0), (1, 2), (2, 0)]
     rates = np.ones((3, 4))
     rates[1] = [1e-200, 1e200, 1e-200, 1.0]
+    ref = mp_steady_state(3, edges, rates[1], dps=400)
+    keep = [i for i in range(3) if ref[i] >= np.finfo(float).tiny]
+    again = mp_steady_state(3, edges, rates[1], dps=800)
+    assert max_rel_err([ref[i] for i in keep], [again[i] for i in keep]) < 1e-15
     for backend in ("c", "numpy"):
-        with pytest.raises(EvaluationError, match=r"row 1: the exit rate of state 0"):
-            EliminationPlan(3, edges, order=[1, 0, 2], backend=backend).steady_state(rates)
+        P = EliminationPlan(3, edges, order=[1, 0, 2], backend=backend).steady_state(rates)
+        assert max_rel_err(P[1, keep], [ref[i] for i in keep]) <= 1e-14
+        # all rates 1: balance gives p = (1/2, 1/4, 1/4) (flux 0->1 = 1->0 + 1->2 = 2->0)
+        assert P[0] == pytest.approx([0.5, 0.25, 0.25], rel=1e-15)
 
 
 def test_not_strongly_connected_is_refused():
