@@ -367,18 +367,59 @@ def cmd_fit(args) -> int:
     values = _values(args)
     data = read_table(args.data)
     _, model = _compile(args.model, args.method, args.backend)
-    r = fit(model, data, values=values, starts=args.starts, seed=args.seed)
+    r = fit(model, data, values=values, starts=args.starts, seed=args.seed, profile=args.profile)
     if args.json:
         _emit(r)
         return 0
+    _print_fit(r)
+    return 0
+
+
+def _print_fit(r) -> None:
     print(f"fit of {len(r['parameters'])} parameters to {r['n_residuals']} values "
-          f"(cost {r['cost']:.6g}; {r['message']}):")
+          f"(cost {r['cost']:.6g}; {r['message']}; best-fit parameters of the model):")
     for k, v in r["parameters"].items():
         u = r["uncertainties"][k]
         print(f"  {k:<16} {v:.6g}" + (f" ± {u:.3g}" if u is not None else " (uncertainty undetermined)")
               + ("  at a bound" if k in r["at_bounds"] else ""))
+    dof = r["degrees_of_freedom"]
+    print(f"  degrees of freedom: {dof} ({r['n_residuals']} residuals - {r['n_free']} parameters)"
+          + ("" if r["residual_variance"] is None else f"; residual variance {r['residual_variance']:.4g}"))
+    ident = r["identifiability"]
+    print(f"  identifiability: {ident['message']}")
+    if ident["unidentifiable"]:
+        for item in ident["identifiable"]:
+            name = item["expression"] or "(" + ", ".join(f"{k}^{v:g}" for k, v in item["exponents"].items()) + ")"
+            if "value" in item:
+                print(f"    {name:<22} {item['value']:.6g} (standard error of its ln "
+                      f"{item['log_uncertainty']:.3g})")
+    if r["correlations"] is None:
+        print("  correlations: undetermined (the covariance is singular)" if dof > 0 else
+              "  correlations: undetermined (no degrees of freedom)")
+    elif r["correlations"]:
+        print("  correlations above 0.9 (of ln parameters):")
+        for c in r["correlations"]:
+            print(f"    {c['a']} ~ {c['b']}: {c['r']:+.4f}")
+    else:
+        print("  correlations: none above 0.9 in magnitude")
+    for q, pr in (r.get("profiles") or {}).items():
+        _print_profile(q, pr)
     print(f"  uncertainties: {r['uncertainty_method']}")
-    return 0
+
+
+def _print_profile(q, pr) -> None:
+    if pr.get("threshold_delta_cost") is None:
+        print(f"  profile of {q}: {pr['note']}")
+        return
+    lo = "open" if pr["lower_open"] else f"{pr['lower']:.6g}"
+    hi = "open" if pr["upper_open"] else f"{pr['upper']:.6g}"
+    print(f"  profile-likelihood {100 * pr['level']:g}% interval of {q}: [{lo}, {hi}]"
+          + ("" if pr["wald_interval"] is None else
+             f" (linearized: [{pr['wald_interval'][0]:.6g}, {pr['wald_interval'][1]:.6g}])"))
+    for side, note in pr["notes"].items():
+        print(f"    {side} end {note}")
+    if "warning" in pr:
+        print(f"    warning: {pr['warning']}")
 
 
 # ------------------------------------------------------------------ registration
@@ -456,5 +497,7 @@ def register(subparsers) -> None:
     q.add_argument("data", help="CSV: symbol columns, observable columns, optional sigma_<observable>")
     q.add_argument("--starts", type=_positive_int, default=1, help="starting points (extra ones random)")
     q.add_argument("--seed", type=int, default=0)
+    q.add_argument("--profile", metavar="K1,K2", help="profile-likelihood 95%% intervals of these "
+                   "fitted parameters (each fixed on a grid, the others re-fitted)")
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_fit)
