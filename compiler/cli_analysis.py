@@ -106,18 +106,73 @@ def cmd_response(args) -> int:
     lo, hi = parse_range(args.range, positive=False)
     plt = _pyplot() if args.plot else None
     values = _values(args)
-    _, model = _compile(args.model, args.method, args.backend)
-    r = response_curve(model, observable=args.observable, input=args.input, lo=lo, hi=hi,
-                       points=args.points, values=values, normalization=args.normalize,
-                       spacing=args.spacing)
+    scheme, model = _compile(args.model, args.method, args.backend)
+    options = dict(observable=args.observable, input=args.input, lo=lo, hi=hi, points=args.points,
+                   normalization=args.normalize, spacing=args.spacing)
+    other = _comparison_model(args, scheme)
+    r = response_curve(model, values=values, **options)
+    if other is not None:
+        comparison, model2, _ = other
+        values2 = _values_for(model2, values, comparison)
+        comparison["result"] = _naming_file(comparison["model"], response_curve, model2,
+                                            values=values2, **options)
+        r["comparison"] = comparison
     if plt is not None:
-        _plot_response(plt, r, args.plot)
+        if other is None:
+            _plot_response(plt, r, args.plot)
+        else:
+            _plot_response_pair(plt, r, scheme.name, args.plot)
         r["plot"] = str(args.plot)
     if args.json:
         _emit(r)
         return 0
     _print_response(r)
+    if other is not None:
+        print(f"\ncompared with the {r['comparison']['label']}:")
+        _print_response(r["comparison"]["result"])
     return 0
+
+
+# ------------------------------------------------------------------ comparison overlays
+
+def _restricted(path):
+    """The scheme of a model file restricted to detailed balance."""
+    from .balance import equilibrium_restriction
+    return equilibrium_restriction(_cli().load_model(path))
+
+
+def _rebuild_restricted(path, method, backend):
+    """Recompile the equilibrium restriction (module level: picklable for workers)."""
+    from .pipeline import compile_scheme
+    return compile_scheme(_restricted(path), method=method, backend=backend)
+
+
+def _comparison_model(args, scheme):
+    """The second model to overlay (``--compare-equilibrium`` or ``--with OTHER``):
+    (description dict, compiled model, picklable rebuild for workers), or None."""
+    if getattr(args, "compare_equilibrium", False):
+        from .balance import equilibrium_restriction
+        from .pipeline import compile_scheme
+        restricted = equilibrium_restriction(scheme)
+        model = compile_scheme(restricted, method=args.method, backend=args.backend)
+        return ({"label": "equilibrium restriction", "kind": "equilibrium_restriction",
+                 "model": str(args.model), "name": restricted.name,
+                 "restricted_edges": list(restricted.restricted_edges)},
+                model, partial(_rebuild_restricted, args.model, args.method, args.backend))
+    if getattr(args, "with_model", None):
+        other, model = _compile(args.with_model, args.method, args.backend)
+        return ({"label": other.name or str(args.with_model), "kind": "model",
+                 "model": str(args.with_model), "name": other.name},
+                model, partial(_rebuild, args.with_model, args.method, args.backend))
+    return None
+
+
+def _values_for(model, values: dict, comparison: dict) -> dict:
+    """``--set`` values that the second model has; the others are listed in the comparison."""
+    missing = [k for k in values if k not in model.symbols]
+    if missing:
+        comparison["values_not_in_model"] = missing
+    return {k: v for k, v in values.items() if k in model.symbols}
 
 
 def _print_response(r) -> None:
@@ -192,6 +247,33 @@ def _plot_response(plt, r, path) -> None:
                      "limits" if r["monotone"] else "limits and peak"))
     ax.set_title(f"Model prediction: response of {r['observable']} to {r['input']}", fontsize=10)
     ax.legend(fontsize="small")
+    fig.tight_layout()
+    _savefig(fig, path)
+    plt.close(fig)
+
+
+def _plot_response_pair(plt, r, name, path) -> None:
+    """A scheme and its comparison on the same axes: the observable (left) and
+    the observable normalized to its limits (right), with a legend."""
+    import numpy as np
+    other = r["comparison"]
+    fig, axes = plt.subplots(1, 2, figsize=(10.5, 4.4))
+    for res, label, style, color in ((r, name or "scheme", "-", "C0"),
+                                     (other["result"], other["label"], "--", "C3")):
+        x = np.array(res["curve"]["x"])
+        h = res.get("hill_effective")
+        for ax, key in zip(axes, ("y", "y_normalized")):
+            ax.plot(x, np.array(res["curve"][key], dtype=float), style, lw=2, color=color,
+                    label=label if key == "y" or h is None else f"{label}: effective Hill {h:.3g}")
+    for ax, what in zip(axes, ("value", "normalized to its " + (
+            "range" if r["normalization"] == "range" else "limits"))):
+        if r["spacing"] == "log":
+            ax.set_xscale("log")
+        ax.set_xlabel(f"{r['input']} ({r['spacing']} scale)")
+        ax.set_ylabel(f"{r['observable']}, {what}")
+        ax.legend(fontsize="small")
+    fig.suptitle(f"Model predictions: response of {r['observable']} to {r['input']}, "
+                 f"compared with the {other['label']}", fontsize=10)
     fig.tight_layout()
     _savefig(fig, path)
     plt.close(fig)
@@ -293,8 +375,7 @@ def cmd_passage(args) -> int:
 # ------------------------------------------------------------------ sample
 
 def cmd_sample(args) -> int:
-    import numpy as np
-    from treeflux.runtime.analysis import sample, write_table
+    from treeflux.runtime.analysis import sample
     _check_outputs(args)
     spec = [args.observable, args.input, args.range]
     if any(v is not None for v in spec) and not all(v is not None for v in spec):
@@ -306,55 +387,125 @@ def cmd_sample(args) -> int:
                     "points": args.points}
     plt = _pyplot() if args.plot else None
     values = _values(args)
-    _, model = _compile(args.model, args.method, args.backend)
-    r = sample(model, args.n, seed=args.seed, values=values, response=response,
-               workers=args.workers, scheduler=args.scheduler,
+    scheme, model = _compile(args.model, args.method, args.backend)
+    other = _comparison_model(args, scheme)
+    out2 = _comparison_out(args.out) if other is not None and args.out else None
+    if out2 is not None:
+        from treeflux.runtime.safe_io import check_target
+        check_target(out2)
+    options = dict(seed=args.seed, response=response, workers=args.workers, scheduler=args.scheduler)
+    r = sample(model, args.n, values=values, **options,
                rebuild=partial(_rebuild, args.model, args.method, args.backend))
+    r2 = comparison = None
+    if other is not None:
+        comparison, model2, rebuild2 = other
+        values2 = _values_for(model2, values, comparison)
+        r2 = _naming_file(comparison["model"], sample, model2, args.n, values=values2, **options,
+                          rebuild=rebuild2)
+        # same seed, same parameter names in the same order: row i of both tables has the same draws
+        comparison["paired"] = r2["columns"][:len(r2["ranges"])] == r["columns"][:len(r["ranges"])]
     if args.out:
-        write_table(r, args.out)
+        _write_tables(r, args.out, r2, out2)
     if plt is not None:
-        _plot_samples(plt, r, args.plot)
+        _plot_samples(plt, r, args.plot, r2, (scheme.name or "scheme", comparison))
     if args.json:
-        summary = {"n": args.n, "seed": args.seed, "columns": r["columns"], "ranges": r["ranges"],
-                   "fixed": r["fixed"], "response": r["response"], "out": args.out,
-                   "plot": args.plot, "note": r["note"]}
-        data = r["data"]
-        summary["summary"] = {}
-        for c, name in enumerate(r["columns"]):
-            col = data[:, c][np.isfinite(data[:, c])]
-            summary["summary"][name] = ({"min": col.min(), "median": float(np.median(col)),
-                                         "max": col.max(), "count": int(col.size)} if col.size
-                                        else {"count": 0})
-        if not args.out:
-            summary["rows"] = data
+        summary = _sample_summary(r, args.out)
+        summary.update({"n": args.n, "seed": args.seed, "plot": args.plot})
+        if comparison is not None:
+            comparison.update(_sample_summary(r2, out2))
+            summary["comparison"] = comparison
         _emit(summary)
     elif not args.out:
-        sys.stdout.write(",".join(r["columns"]) + "\n")
-        for row in r["data"]:
-            sys.stdout.write(",".join(f"{v:.17g}" for v in row) + "\n")
+        _write_csv(r)
+        if r2 is not None:
+            sys.stdout.write(f"# comparison: {comparison['label']} ({comparison['model']})\n")
+            _write_csv(r2)
     else:
-        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out}")
+        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out}"
+              + ("" if r2 is None else f"; the {comparison['label']}'s to {out2}"))
     return 0
 
 
-def _plot_samples(plt, r, path):
+def _comparison_out(path) -> str:
+    """``samples.csv`` → ``samples.comparison.csv``: where the comparison's table goes."""
+    from pathlib import Path
+    p = Path(path)
+    return str(p.with_name(f"{p.stem}.comparison{p.suffix}"))
+
+
+def _write_tables(r, path, r2, path2) -> None:
+    """Write the table(s); with a comparison both or neither (safe_io.write_files)."""
+    from treeflux.runtime.analysis import write_table
+    if r2 is None:
+        write_table(r, path)
+        return
+    import tempfile
+    from pathlib import Path
+    from treeflux.runtime.safe_io import write_files
+    with tempfile.TemporaryDirectory() as tmp:
+        blobs = {}
+        for res, target in ((r, path), (r2, path2)):
+            staged = Path(tmp) / f"{len(blobs)}{Path(target).suffix}"
+            write_table(res, staged)
+            blobs[target] = staged.read_bytes()
+        write_files(blobs)
+
+
+def _write_csv(r) -> None:
+    sys.stdout.write(",".join(r["columns"]) + "\n")
+    for row in r["data"]:
+        sys.stdout.write(",".join(f"{v:.17g}" for v in row) + "\n")
+
+
+def _sample_summary(r, out) -> dict:
+    """The JSON summary of one sample table (rows included when not written to a file)."""
     import numpy as np
-    cols, data = r["columns"], r["data"]
+    summary = {"columns": r["columns"], "ranges": r["ranges"], "fixed": r["fixed"],
+               "response": r["response"], "out": out, "note": r["note"], "summary": {}}
+    data = r["data"]
+    for c, name in enumerate(r["columns"]):
+        col = data[:, c][np.isfinite(data[:, c])]
+        summary["summary"][name] = ({"min": col.min(), "median": float(np.median(col)),
+                                     "max": col.max(), "count": int(col.size)} if col.size
+                                    else {"count": 0})
+    if not out:
+        summary["rows"] = data
+    return summary
+
+
+def _plot_samples(plt, r, path, r2=None, labels=("scheme", None)):
+    import numpy as np
     fig, ax = plt.subplots(figsize=(6, 4))
+    runs = [(r, labels[0], "C0", "-")]
+    if r2 is not None:
+        runs.append((r2, labels[1]["label"], "C3", "--"))
     if r["response"] is not None:
-        x, y = data[:, cols.index("ec50")], data[:, cols.index("hill_effective")]
-        ok = np.isfinite(x) & np.isfinite(y)
-        ax.scatter(x[ok], y[ok], s=4, alpha=0.5)
+        for res, label, color, _ in runs:
+            cols, data = res["columns"], res["data"]
+            x, y = data[:, cols.index("ec50")], data[:, cols.index("hill_effective")]
+            ok = np.isfinite(x) & np.isfinite(y)
+            ax.scatter(x[ok], y[ok], s=4, alpha=0.5, color=color, label=label)
         ax.set_xscale("log")
         ax.set_xlabel(f"EC50 of {r['response']['observable']} in {r['response']['input']}")
-        ax.set_ylabel("effective Hill coefficient")
+        ax.set_ylabel("effective Hill coefficient (model prediction)")
+        if r2 is not None:
+            ax.legend(fontsize="small", markerscale=3)
     else:
-        outputs = [c for c in cols if c not in r["ranges"]]
-        for name in outputs[:8]:
-            ax.hist(data[:, cols.index(name)], bins=40, histtype="step", label=name)
+        outputs = [c for c in r["columns"] if c not in r["ranges"]]
+        shown = outputs[:8] if r2 is None else [c for c in outputs if not c.startswith("p_")][:4] or outputs[:4]
+        for k, name in enumerate(shown):
+            for res, label, _, style in runs:
+                if name in res["columns"]:
+                    ax.hist(res["data"][:, res["columns"].index(name)], bins=40, histtype="step",
+                            color=f"C{k}", ls=style,
+                            label=name if r2 is None else f"{name} ({label})")
         ax.set_xlabel("value (model prediction)")
         ax.set_ylabel("samples")
         ax.legend(fontsize="small")
+    if r2 is not None:
+        ax.set_title(f"Model predictions: {labels[0]} vs its {labels[1]['label']}"
+                     if labels[1]["kind"] == "equilibrium_restriction"
+                     else f"Model predictions: {labels[0]} vs {labels[1]['label']}", fontsize=9)
     fig.tight_layout()
     _savefig(fig, path)
     plt.close(fig)
@@ -443,6 +594,15 @@ def _positive_int(text):
     return v
 
 
+def _comparison_options(q) -> None:
+    g = q.add_mutually_exclusive_group()
+    g.add_argument("--compare-equilibrium", action="store_true",
+                   help="also run the scheme restricted to detailed balance and overlay both "
+                        "(JSON: a 'comparison' object)")
+    g.add_argument("--with", dest="with_model", metavar="OTHER.toml",
+                   help="also run a second model with the same observable and input and overlay both")
+
+
 def register(subparsers) -> None:
     """Add the analysis subcommands to an argparse sub-parsers object."""
     q = subparsers.add_parser("response", help="response curve of an observable to one input")
@@ -461,6 +621,7 @@ def register(subparsers) -> None:
     q.add_argument("--spacing", default="auto", choices=["auto", "log", "linear"],
                    help="grid spacing; auto: log when 0 < LO and the input is not signed")
     q.add_argument("--plot", metavar="FILE.png", help="draw the curve (needs matplotlib)")
+    _comparison_options(q)
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_response)
 
@@ -489,6 +650,7 @@ def register(subparsers) -> None:
     q.add_argument("--points", type=_positive_int, default=41, help="grid points per response curve")
     q.add_argument("--out", metavar="FILE", help="write the table (.csv, or .npz) atomically")
     q.add_argument("--plot", metavar="FILE.png", help="draw the samples (needs matplotlib)")
+    _comparison_options(q)
     q.add_argument("--json", action="store_true", help="print a JSON summary")
     q.set_defaults(handler=cmd_sample)
 
