@@ -20,7 +20,7 @@ scaled by the observed scatter either way.
 
 Fits explain themselves: the singular value decomposition of J names the
 combinations of parameters the data cannot identify (directions in ln θ with
-singular values below 1e-6 of the largest: "the data cannot identify
+singular values below 1e-7 of the largest: "the data cannot identify
 kon*koff; only koff/kon is identifiable"), strong correlations
 (|r| > 0.9) and the degrees of freedom are reported, and profile-likelihood
 intervals (Venzon & Moolgavkar 1988; Bates & Watts ch. 6) are computed for
@@ -41,7 +41,9 @@ from .errors import EvaluationError
 __all__ = ["fit", "read_table", "identifiability", "profile_interval", "combination_text"]
 
 CORRELATION_SHOWN = 0.9     # |correlation| above which a pair of parameters is reported
-NULL_TOLERANCE = 1e-6       # singular value / largest below which a direction is not identifiable
+NULL_TOLERANCE = 1e-7       # singular value / largest below which a direction is not identifiable
+                            # (cond(J^T J) > 1e14: the covariance is not computed)
+POOR_TOLERANCE = 1e-3       # ... below which an identifiable direction is reported as poorly determined
 MAX_EXPONENT = 6            # largest integer exponent used to name a combination
 INTEGER_TOLERANCE = 2e-3    # how close to integers (after scaling) the exponents must be
 
@@ -276,18 +278,15 @@ def _profile_names(profile, free) -> list:
 
 
 def _wald(result, J, u, s2, free) -> None:
-    """Asymptotic standard errors and strong correlations (|r| > CORRELATION_SHOWN)."""
-    JTJ = J.T @ J
-    try:
-        cond = np.linalg.cond(JTJ)
-        cov = np.linalg.inv(JTJ) * s2 if np.isfinite(cond) and cond < 1e14 else None
-    except np.linalg.LinAlgError:
-        cov = None
-    if cov is None:
+    """Asymptotic standard errors and strong correlations (|r| > CORRELATION_SHOWN);
+    undetermined when J has a null direction (see :func:`identifiability`)."""
+    s, Vt, small = _spectrum(J, len(free))
+    if small.any():
         result["uncertainties"] = {q: None for q in free}
         result["log_uncertainties"] = {q: None for q in free}
         result["note"] += "; J^T J is singular: the parameters are not all identifiable from these data"
         return
+    cov = (Vt.T / s ** 2) @ Vt * s2            # s² (J^T J)^-1 from the SVD of J
     su = np.sqrt(np.maximum(np.diag(cov), 0.0))
     result["log_uncertainties"] = dict(zip(free, su.tolist()))
     result["uncertainties"] = dict(zip(free, (np.exp(u) * su).tolist()))
@@ -370,6 +369,17 @@ def _describe(vec: np.ndarray, names) -> dict:
             "exponents": {n: round(float(k), 4) for n, k in zip(names, v) if abs(k) > 1e-12}}
 
 
+def _spectrum(J: np.ndarray, p: int, tolerance: float = NULL_TOLERANCE):
+    """Singular values of J (p of them, zeros added when m < p), the right singular
+    vectors as rows, and which singular values count as zero (≤ tolerance · largest)."""
+    s_full = np.zeros(p)
+    _, s, Vt = np.linalg.svd(J, full_matrices=True)
+    s_full[:len(s)] = s
+    smax = float(s_full.max()) if p else 0.0
+    small = s_full <= tolerance * smax if smax > 0 else np.ones(p, dtype=bool)
+    return s_full, Vt, small
+
+
 def identifiability(J: np.ndarray, names, u=None, s2=None, *, tolerance: float = NULL_TOLERANCE) -> dict:
     """Which combinations of ln-parameters the residuals determine, from the SVD of J.
 
@@ -380,16 +390,16 @@ def identifiability(J: np.ndarray, names, u=None, s2=None, *, tolerance: float =
     complement (the row space of J) holds the identifiable combinations; both
     are reported in reduced row echelon form, as products and ratios of
     parameters with small integer exponents where the direction is close to
-    one (else as the exponent vector). With ``u`` and ``s2``, each identifiable
-    combination also gets its value and its standard error of ln, s·√(cᵀ(JᵀJ)⁺c).
+    one (else as the exponent vector). Identifiable directions with singular
+    values below POOR_TOLERANCE · s_max are listed as ``poorly_identified``.
+    With ``u`` and ``s2``, each identifiable combination also gets its value
+    and the standard error of its ln, s·√(cᵀ(JᵀJ)⁺c).
     """
     names = list(names)
     p = len(names)
-    s_full = np.zeros(p)
-    _, s, Vt = np.linalg.svd(J, full_matrices=True)
-    s_full[:len(s)] = s
+    s_full, Vt, small = _spectrum(J, p, tolerance)
     smax = float(s_full.max()) if p else 0.0
-    small = s_full <= tolerance * smax if smax > 0 else np.ones(p, dtype=bool)
+    weak = ~small & (s_full < POOR_TOLERANCE * smax)
     null = _rref(Vt[small]) if small.any() else np.zeros((0, p))
     rowspace = _rref(Vt[~small]) if (~small).any() else np.zeros((0, p))
     out = {
@@ -397,6 +407,7 @@ def identifiability(J: np.ndarray, names, u=None, s2=None, *, tolerance: float =
         "tolerance": tolerance,
         "unidentifiable": [_describe(v, names) for v in null],
         "identifiable": [_describe(v, names) for v in rowspace],
+        "poorly_identified": [_describe(v, names) for v in _rref(Vt[weak])] if weak.any() else [],
         "individually_identifiable": [n for k, n in enumerate(names)
                                       if not small.any() or np.max(np.abs(Vt[small][:, k])) < 1e-6],
     }
@@ -416,15 +427,17 @@ def _identifiability_message(info: dict, p: int) -> str:
         if item["expression"] is not None:
             return item["expression"]
         return "the direction (" + ", ".join(f"{k}: {v:g}" for k, v in item["exponents"].items()) + ") in ln"
-    bad, good = info["unidentifiable"], info["identifiable"]
+    bad, good, weak = info["unidentifiable"], info["identifiable"], info["poorly_identified"]
+    poor = ("; poorly determined (singular value below "
+            f"{POOR_TOLERANCE:g} of the largest): " + ", ".join(show(w) for w in weak)) if weak else ""
     if not bad:
-        return f"all {p} parameters are locally identifiable from these data"
+        return f"all {p} parameters are locally identifiable from these data" + poor
     text = "the data cannot identify " + ", ".join(show(b) for b in bad)
     if not good:
         return text + "; no combination of the parameters is identifiable"
     if len(good) == 1:
-        return text + f"; only {show(good[0])} is identifiable"
-    return text + "; identifiable: " + ", ".join(show(g) for g in good)
+        return text + f"; only {show(good[0])} is identifiable" + poor
+    return text + "; identifiable: " + ", ".join(show(g) for g in good) + poor
 
 
 # ------------------------------------------------------------------ profile likelihood

@@ -5,6 +5,7 @@ curves of the models below with seeded noise)."""
 
 import json
 import math
+import re
 
 import numpy as np
 import pytest
@@ -109,6 +110,8 @@ def test_cli_names_the_ratio_and_opens_the_profile(tmp_path, capsys):
     assert main(["fit", str(path), str(data), "--profile", "koff"]) == 0
     out = capsys.readouterr().out
     assert "only koff/kon is identifiable" in out
+    assert "kon              " in out and "(uncertainty undetermined)" in out
+    assert re.search(r"koff/kon +[0-9.]+ \(standard error of its ln 0\.0", out)
     assert "degrees of freedom: 10 (12 residuals - 2 parameters)" in out
     # koff alone is not bounded above by the data: only by its max in the model
     assert "interval of koff: [" in out and ", open]" in out
@@ -155,6 +158,12 @@ def test_combinations_are_named_with_small_integer_exponents_or_given_as_vectors
     # full rank: nothing unidentifiable
     ident = identifiability(np.array([[1.0, 0.0], [0.5, 2.0], [0.0, 1.0]]), ["a", "b"])
     assert ident["unidentifiable"] == [] and "all 2 parameters" in ident["message"]
+    assert ident["poorly_identified"] == []
+    # a direction 1e-5 weaker than the best: identifiable, but flagged as poorly determined
+    ident = identifiability(np.array([[1.0, 1.0], [1e-5, -1e-5], [2.0, 2.0]]), ["kon", "koff"])
+    assert ident["unidentifiable"] == []
+    assert [w["expression"] for w in ident["poorly_identified"]] == ["koff/kon"]
+    assert "poorly determined" in ident["message"] and "koff/kon" in ident["message"]
 
 
 def test_profile_interval_agrees_with_wald_on_a_near_linear_problem(tmp_path):
