@@ -527,14 +527,16 @@ def cmd_fit(args) -> int:
 
 
 def _print_fit(r) -> None:
-    print(f"fit of {len(r['parameters'])} parameters to {r['n_residuals']} values "
+    n = len(r["parameters"])
+    print(f"fit of {n} parameter{'s' if n != 1 else ''} to {r['n_residuals']} values "
           f"(cost {r['cost']:.6g}; {r['message']}; best-fit parameters of the model):")
     for k, v in r["parameters"].items():
         u = r["uncertainties"][k]
         print(f"  {k:<16} {v:.6g}" + (f" ± {u:.3g}" if u is not None else " (uncertainty undetermined)")
               + ("  at a bound" if k in r["at_bounds"] else ""))
     dof = r["degrees_of_freedom"]
-    print(f"  degrees of freedom: {dof} ({r['n_residuals']} residuals - {r['n_free']} parameters)"
+    print(f"  degrees of freedom: {dof} ({r['n_residuals']} residuals - {r['n_free']} "
+          f"parameter{'s' if r['n_free'] != 1 else ''})"
           + ("" if r["residual_variance"] is None else f"; residual variance {r['residual_variance']:.4g}"))
     ident = r["identifiability"]
     print(f"  identifiability: {ident['message']}")
@@ -544,7 +546,9 @@ def _print_fit(r) -> None:
             if "value" in item:
                 print(f"    {name:<22} {item['value']:.6g} (standard error of its ln "
                       f"{item['log_uncertainty']:.3g})")
-    if r["correlations"] is None:
+    if n == 1:
+        pass
+    elif r["correlations"] is None:
         print("  correlations: undetermined (the covariance is singular)" if dof > 0 else
               "  correlations: undetermined (no degrees of freedom)")
     elif r["correlations"]:

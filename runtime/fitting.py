@@ -431,7 +431,8 @@ def _identifiability_message(info: dict, p: int) -> str:
     poor = ("; poorly determined (singular value below "
             f"{POOR_TOLERANCE:g} of the largest): " + ", ".join(show(w) for w in weak)) if weak else ""
     if not bad:
-        return f"all {p} parameters are locally identifiable from these data" + poor
+        return ("the parameter is" if p == 1 else f"all {p} parameters are") + \
+            " locally identifiable from these data" + poor
     text = "the data cannot identify " + ", ".join(show(b) for b in bad)
     if not good:
         return text + "; no combination of the parameters is identifiable"
