@@ -585,17 +585,95 @@ def _common(q, *, sets=True):
         q.add_argument("--set", action="append", metavar="NAME=VALUE", help="fix a symbol's value")
     q.add_argument("--method", default="auto", choices=METHODS)
     q.add_argument("--backend", default="python", choices=BACKENDS)
+    q.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
 def _positive_int(text):
+    """A count ≥ 1: an integer, also written like 1e6 or 1_000_000."""
     import argparse
+    t = str(text).strip()
     try:
-        v = int(text)
+        v = int(t)
     except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+        try:
+            f = float(t)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+        if not math.isfinite(f) or f != int(f):
+            raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+        v = int(f)
     if v < 1:
         raise argparse.ArgumentTypeError(f"{text!r} must be at least 1")
     return v
+
+
+def _seed(text):
+    """A random seed: an integer ≥ 0 (numpy's generators refuse negative seeds)."""
+    import argparse
+    try:
+        v = int(str(text).strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: a seed must be 0 or a positive integer")
+    return v
+
+
+# More worker processes than this many per core only add memory and scheduling.
+WORKERS_PER_CORE = 4
+
+
+def _workers(text):
+    """Worker processes: at least 1, at most WORKERS_PER_CORE per core of this machine."""
+    import argparse
+    import os
+    v = _positive_int(text)
+    cores = os.cpu_count() or 1
+    if v > WORKERS_PER_CORE * cores:
+        raise argparse.ArgumentTypeError(
+            f"{v} worker processes on a machine with {cores} core{'s' * (cores != 1)}: at most "
+            f"{WORKERS_PER_CORE * cores} ({WORKERS_PER_CORE} per core); for more, start a cluster "
+            f"and pass --scheduler")
+    return v
+
+
+# ------------------------------------------------------------------ request guards
+# Refuse a request whose memory exceeds what the machine has, before any work.
+# Estimates are lower bounds of what the command holds at once: float64 arrays
+# of inputs, probabilities and observables, the result table, and its text when
+# it is printed.
+
+def _sizes(args) -> tuple[int, int, int]:
+    """(symbols, states, observables) of the model file named by the command."""
+    scheme = _cli().load_model(args.model)
+    return len(scheme.symbols), len(scheme.states), len(scheme.observables)
+
+
+def _check_memory(what: str, need: float) -> None:
+    from .errors import TooLargeError
+    from .pipeline import available_memory, format_bytes
+    avail = available_memory()
+    if avail is not None and need > 0.8 * avail:
+        raise TooLargeError(f"{what} needs about {format_bytes(need)} of memory; "
+                            f"{format_bytes(avail)} is available")
+
+
+def guard_response(args) -> None:
+    n_sym, n_states, n_obs = _sizes(args)
+    # per grid point: inputs, p, dp/dc, d2p/dc2 and observables (float64), and
+    # the curve's x, y and normalized y as Python floats in lists (about 32 bytes each)
+    per_point = 8 * (n_sym + 4 * (n_states + n_obs)) + 3 * 32 + (3 * 26 if args.json else 0)
+    _check_memory(f"--points {args.points:,}", args.points * per_point)
+
+
+def guard_sample(args) -> None:
+    n_sym, n_states, n_obs = _sizes(args)
+    width = n_sym + n_states + n_obs + (8 if args.range is not None else 0)
+    # inputs, steady states and the result table in float64; printed rows as text
+    # (about 26 characters a number, held until the command succeeds and copied once
+    # when written: three times the text at the peak)
+    per_sample = 8 * (n_sym + n_states + n_obs) + 8 * width + (0 if args.out else 3 * 26 * width)
+    _check_memory(f"--n {args.n:,} samples of {width} columns", args.n * per_sample)
 
 
 def _comparison_options(q) -> None:
@@ -627,7 +705,7 @@ def register(subparsers) -> None:
     q.add_argument("--plot", metavar="FILE.png", help="draw the curve (needs matplotlib)")
     _comparison_options(q)
     q.add_argument("--json", action="store_true")
-    q.set_defaults(handler=cmd_response)
+    q.set_defaults(handler=cmd_response, guard=guard_response)
 
     q = subparsers.add_parser("thermo", help="fluxes, cycle affinities, entropy production")
     _common(q)
@@ -644,9 +722,9 @@ def register(subparsers) -> None:
     q = subparsers.add_parser("sample", help="sample parameter space log-uniformly")
     _common(q)
     q.add_argument("--n", type=_positive_int, required=True, help="number of samples")
-    q.add_argument("--seed", type=int, default=0)
+    q.add_argument("--seed", type=_seed, default=0)
     where = q.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=_positive_int, help="processes of a local pool")
+    where.add_argument("--workers", type=_workers, help="processes of a local pool")
     where.add_argument("--scheduler", metavar="ADDR", help="dask.distributed scheduler address")
     q.add_argument("--observable", help="with --input and --range: summarize response curves")
     q.add_argument("--input")
@@ -656,13 +734,13 @@ def register(subparsers) -> None:
     q.add_argument("--plot", metavar="FILE.png", help="draw the samples (needs matplotlib)")
     _comparison_options(q)
     q.add_argument("--json", action="store_true", help="print a JSON summary")
-    q.set_defaults(handler=cmd_sample)
+    q.set_defaults(handler=cmd_sample, guard=guard_sample)
 
     q = subparsers.add_parser("fit", help="fit bounded parameters to measured observables")
     _common(q)
     q.add_argument("data", help="CSV: symbol columns, observable columns, optional sigma_<observable>")
     q.add_argument("--starts", type=_positive_int, default=1, help="starting points (extra ones random)")
-    q.add_argument("--seed", type=int, default=0)
+    q.add_argument("--seed", type=_seed, default=0)
     q.add_argument("--profile", metavar="K1,K2", help="profile-likelihood 95%% intervals of these "
                    "fitted parameters (each fixed on a grid, the others re-fitted)")
     q.add_argument("--json", action="store_true")

@@ -32,17 +32,25 @@ from __future__ import annotations
 
 import csv
 import math
+import os
+import time
 from pathlib import Path
 
 import numpy as np
 
 from .errors import EvaluationError
+from .progress import progress
+
+# A fit is refused up front when its estimated time exceeds this many seconds
+# (override with the environment variable TREEFLUX_TIME_BUDGET or max_seconds=).
+TIME_BUDGET_SECONDS = 3600.0
 
 __all__ = ["fit", "read_table", "identifiability", "profile_interval", "combination_text"]
 
 CORRELATION_SHOWN = 0.9     # |correlation| above which a pair of parameters is reported
 NULL_TOLERANCE = 1e-7       # singular value / largest below which a direction is not identifiable
                             # (cond(J^T J) > 1e14: the covariance is not computed)
+PROFILE_REFINE = 12         # bisection steps locating each end of a profile interval
 POOR_TOLERANCE = 1e-3       # ... below which an identifiable direction is reported as poorly determined
 MAX_EXPONENT = 6            # largest integer exponent used to name a combination
 INTEGER_TOLERANCE = 2e-3    # how close to integers (after scaling) the exponents must be
@@ -61,10 +69,16 @@ def read_table(path) -> dict:
     """
     path = Path(path)
     try:
-        with open(path, newline="") as fh:
+        # utf-8-sig: a byte-order mark (spreadsheets write one) is accepted and dropped
+        with open(path, newline="", encoding="utf-8-sig") as fh:
             rows = list(csv.reader(fh))
     except OSError as exc:
         raise EvaluationError(f"cannot read {path}: {exc.strerror or exc}") from None
+    except UnicodeDecodeError as exc:
+        raise EvaluationError(f"{path}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at offset "
+                              f"{exc.start}); save the table as UTF-8 CSV") from None
+    except csv.Error as exc:
+        raise EvaluationError(f"{path}: not a readable CSV table ({exc})") from None
     rows = [r for r in rows if any(c.strip() for c in r)]
     if len(rows) < 2:
         raise EvaluationError(f"{path}: needs a header row and at least one data row")
@@ -114,8 +128,28 @@ def _classify(model, table: dict, values: dict):
     return fixed_cols, obs_cols, sig_cols
 
 
+def _time_budget(max_seconds) -> float:
+    if max_seconds is not None:
+        return float(max_seconds)
+    text = os.environ.get("TREEFLUX_TIME_BUDGET", "")
+    try:
+        value = float(text) if text else TIME_BUDGET_SECONDS
+    except ValueError:
+        raise EvaluationError(f"TREEFLUX_TIME_BUDGET={text!r} is not a number of seconds") from None
+    return value if value > 0 else TIME_BUDGET_SECONDS
+
+
+def _refuse_time(starts: int, per_start: float, budget: float, how: str) -> None:
+    total = starts * per_start
+    if total > budget:
+        raise EvaluationError(f"{starts:,} starts would take about {total:,.0f} s ({how}), more than the "
+                              f"time budget of {budget:,.0f} s; use fewer starts or raise "
+                              f"TREEFLUX_TIME_BUDGET")
+
+
 def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
-        max_evaluations: int = 2000, profile=None) -> dict:
+        max_evaluations: int = 2000, max_seconds: float | None = None,
+        profile=None) -> dict:
     """Least-squares fit of the bounded parameters to measured observables.
 
     Parameters
@@ -133,6 +167,11 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         Seed for the extra starting points.
     max_evaluations : int
         Cap on residual evaluations per start.
+    max_seconds : float, optional
+        Time budget (default ``TREEFLUX_TIME_BUDGET`` or 3600 s). Refused up
+        front when ``starts`` × a lower bound of one start's cost exceeds it
+        (one residual evaluation is timed; a start costs at least p + 1 of
+        them), and again after the first start from its measured time.
     profile : list or comma-separated str, optional
         Fitted parameters to give profile-likelihood intervals
         (:func:`profile_interval`).
@@ -217,15 +256,37 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
     for q, a, b in zip(free, lo, hi):
         v = model.info.defaults.get(q)
         u0.append(math.log(v) if v is not None else 0.5 * (a + b))
+    try:
+        starts = int(starts)
+    except (TypeError, ValueError):
+        raise EvaluationError(f"starts must be a positive integer, got {starts!r}") from None
+    if starts < 1:
+        raise EvaluationError(f"starts must be a positive integer, got {starts}")
+    budget = _time_budget(max_seconds)
+    t0 = time.perf_counter()
+    residuals(np.clip(np.array(u0), lo + inner, hi - inner))
+    t_eval = time.perf_counter() - t0
+    _refuse_time(starts, (p + 1) * t_eval, budget, f"at least {p + 1} residual evaluations per start")
+    if profile:
+        # each profile: two ends, each at least one grid point and PROFILE_REFINE bisection
+        # steps, each a re-fit costing at least p residual evaluations
+        least = 2 * (1 + PROFILE_REFINE) * p
+        _refuse_time(len(profile), least * t_eval, budget,
+                     f"profiles: at least {least} residual evaluations per profiled parameter")
     rng = np.random.default_rng(seed)
-    candidates = [np.array(u0)] + [lo + rng.random(p) * (hi - lo) for _ in range(max(0, int(starts) - 1))]
     best = None
-    for start in candidates:
-        start = np.clip(start, lo + inner, hi - inner)
-        res = least_squares(residuals, start, bounds=(lo, hi), method="trf", x_scale=1.0,
-                            max_nfev=max_evaluations, xtol=1e-12, ftol=1e-12, gtol=1e-12)
-        if best is None or res.cost < best.cost:
-            best = res
+    with progress("fitting", total=starts, unit="start") as bar:
+        for k in range(starts):
+            start = np.array(u0) if k == 0 else lo + rng.random(p) * (hi - lo)
+            start = np.clip(start, lo + inner, hi - inner)
+            t0 = time.perf_counter()
+            res = least_squares(residuals, start, bounds=(lo, hi), method="trf", x_scale=1.0,
+                                max_nfev=max_evaluations, xtol=1e-12, ftol=1e-12, gtol=1e-12)
+            if k == 0 and starts > 1:
+                _refuse_time(starts, time.perf_counter() - t0, budget, "the first start's time")
+            if best is None or res.cost < best.cost:
+                best = res
+            bar.update(1)
     u = best.x
     r = residuals(u)
     J = _central_jacobian(residuals, u)
@@ -258,9 +319,12 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         _wald(result, J, u, s2, free)
     if profile:
         scale = s2 if s2 is not None else (1.0 if sig_cols else None)
-        result["profiles"] = {q: profile_interval(residuals, u, lo, hi, free.index(q), scale,
-                                                  result["log_uncertainties"][q], free)
-                              for q in profile}
+        result["profiles"] = {}
+        with progress("profiling", total=len(profile), unit="parameter") as bar:
+            for q in profile:
+                result["profiles"][q] = profile_interval(residuals, u, lo, hi, free.index(q), scale,
+                                                         result["log_uncertainties"][q], free)
+                bar.update(1)
     return result
 
 
@@ -444,7 +508,7 @@ def _identifiability_message(info: dict, p: int) -> str:
 # ------------------------------------------------------------------ profile likelihood
 
 def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, *,
-                     level: float = 0.95, max_steps: int = 40, refine: int = 12) -> dict:
+                     level: float = 0.95, max_steps: int = 40, refine: int | None = None) -> dict:
     """Profile-likelihood interval of parameter ``k``.
 
     ln θ_k is fixed on a grid walking out from the optimum in both directions
@@ -458,6 +522,7 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
     """
     from scipy.optimize import least_squares
     from scipy.stats import chi2, norm
+    refine = PROFILE_REFINE if refine is None else refine
     name = names[k]
     if scale is None:
         return {"parameter": name, "lower": None, "upper": None, "lower_open": None, "upper_open": None,
