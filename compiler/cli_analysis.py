@@ -101,18 +101,60 @@ def cmd_response(args) -> int:
     lo, hi = parse_range(args.range, positive=False)
     plt = _pyplot() if args.plot else None
     values = _values(args)
-    _, model = _compile(args.model, args.method, args.backend)
-    r = response_curve(model, observable=args.observable, input=args.input, lo=lo, hi=hi,
-                       points=args.points, values=values, normalization=args.normalize,
-                       spacing=args.spacing)
+    scheme, model = _compile(args.model, args.method, args.backend)
+    options = dict(observable=args.observable, input=args.input, lo=lo, hi=hi, points=args.points,
+                   normalization=args.normalize, spacing=args.spacing)
+    other = _comparison_model(args, scheme)
+    r = response_curve(model, values=values, **options)
+    if other is not None:
+        comparison, model2 = other
+        values2 = _values_for(model2, values, comparison)
+        comparison["result"] = _naming_file(comparison["model"], response_curve, model2,
+                                            values=values2, **options)
+        r["comparison"] = comparison
     if plt is not None:
-        _plot_response(plt, r, args.plot)
+        if other is None:
+            _plot_response(plt, r, args.plot)
+        else:
+            _plot_response_pair(plt, r, scheme.name, args.plot)
         r["plot"] = str(args.plot)
     if args.json:
         _emit(r)
         return 0
     _print_response(r)
+    if other is not None:
+        print(f"\ncompared with the {r['comparison']['label']}:")
+        _print_response(r["comparison"]["result"])
     return 0
+
+
+# ------------------------------------------------------------------ comparison overlays
+
+def _comparison_model(args, scheme):
+    """The second model to overlay (``--compare-equilibrium`` or ``--with OTHER``):
+    (description dict, compiled model), or None. Compiled models pickle as their
+    scheme and options, so workers rebuild either one."""
+    if getattr(args, "compare_equilibrium", False):
+        from .balance import equilibrium_restriction
+        from .pipeline import compile_scheme
+        restricted = equilibrium_restriction(scheme)
+        model = compile_scheme(restricted, method=args.method, backend=args.backend)
+        return ({"label": "equilibrium restriction", "kind": "equilibrium_restriction",
+                 "model": str(args.model), "name": restricted.name,
+                 "restricted_edges": list(restricted.restricted_edges)}, model)
+    if getattr(args, "with_model", None):
+        other, model = _compile(args.with_model, args.method, args.backend)
+        return ({"label": other.name or str(args.with_model), "kind": "model",
+                 "model": str(args.with_model), "name": other.name}, model)
+    return None
+
+
+def _values_for(model, values: dict, comparison: dict) -> dict:
+    """``--set`` values that the second model has; the others are listed in the comparison."""
+    missing = [k for k in values if k not in model.symbols]
+    if missing:
+        comparison["values_not_in_model"] = missing
+    return {k: v for k, v in values.items() if k in model.symbols}
 
 
 def _print_response(r) -> None:
@@ -187,6 +229,33 @@ def _plot_response(plt, r, path) -> None:
                      "limits" if r["monotone"] else "limits and peak"))
     ax.set_title(f"Model prediction: response of {r['observable']} to {r['input']}", fontsize=10)
     ax.legend(fontsize="small")
+    fig.tight_layout()
+    _savefig(fig, path)
+    plt.close(fig)
+
+
+def _plot_response_pair(plt, r, name, path) -> None:
+    """A scheme and its comparison on the same axes: the observable (left) and
+    the observable normalized to its limits (right), with a legend."""
+    import numpy as np
+    other = r["comparison"]
+    fig, axes = plt.subplots(1, 2, figsize=(10.5, 4.4))
+    for res, label, style, color in ((r, name or "scheme", "-", "C0"),
+                                     (other["result"], other["label"], "--", "C3")):
+        x = np.array(res["curve"]["x"])
+        h = res.get("hill_effective")
+        for ax, key in zip(axes, ("y", "y_normalized")):
+            ax.plot(x, np.array(res["curve"][key], dtype=float), style, lw=2, color=color,
+                    label=label if key == "y" or h is None else f"{label}: effective Hill {h:.3g}")
+    for ax, what in zip(axes, ("value", "normalized to its " + (
+            "range" if r["normalization"] == "range" else "limits"))):
+        if r["spacing"] == "log":
+            ax.set_xscale("log")
+        ax.set_xlabel(f"{r['input']} ({r['spacing']} scale)")
+        ax.set_ylabel(f"{r['observable']}, {what}")
+        ax.legend(fontsize="small")
+    fig.suptitle(f"Model predictions: response of {r['observable']} to {r['input']}, "
+                 f"compared with the {other['label']}", fontsize=10)
     fig.tight_layout()
     _savefig(fig, path)
     plt.close(fig)
@@ -306,35 +375,92 @@ def cmd_sample(args) -> int:
             safe_io.check_target(path)             # refused before the sweep, not after it
     plt = _pyplot() if args.plot else None
     values = _values(args)
-    _, model = _compile(args.model, args.method, args.backend)
+    scheme, model = _compile(args.model, args.method, args.backend)
+    other = _comparison_model(args, scheme)
+    out2 = _comparison_out(args.out) if other is not None and args.out else None
+    if out2 is not None:
+        safe_io.check_target(out2)
+    options = dict(seed=args.seed, response=response, workers=args.workers, scheduler=args.scheduler)
     written = None
+    r2 = comparison = None
     try:
-        r = sample(model, args.n, seed=args.seed, values=values, response=response,
-                   workers=args.workers, scheduler=args.scheduler)
+        r = sample(model, args.n, values=values, **options)
+        if other is not None:
+            comparison, model2 = other
+            values2 = _values_for(model2, values, comparison)
+            r2 = _naming_file(comparison["model"], sample, model2, args.n, values=values2, **options)
+            # same seed, same parameter names in the same order: row i of both tables has the same draws
+            comparison["paired"] = r2["columns"][:len(r2["ranges"])] == r["columns"][:len(r["ranges"])]
         if args.out:
-            written = write_table(r, args.out)
+            if r2 is None:
+                written = write_table(r, args.out)
+            else:
+                _write_tables(r, args.out, r2, out2)
+                written = f"{args.out} and {out2}"
         if plt is not None:
-            _plot_samples(plt, r, args.plot)
+            _plot_samples(plt, r, args.plot, r2, (scheme.name or "scheme", comparison))
     except KeyboardInterrupt:   # the cluster is closed and no partial file is left by now
         print(f"treeflux: interrupted; {f'only {written} was written' if written else 'nothing was written'}",
               file=sys.stderr)
         return 130
     stats = summarize(r)
+    stats2 = summarize(r2) if r2 is not None else None
     if args.json:
-        summary = {"n": args.n, "seed": args.seed, "columns": r["columns"], "ranges": r["ranges"],
-                   "fixed": r["fixed"], "response": r["response"], "out": args.out,
-                   "plot": args.plot, "note": r["note"], "summary": stats["columns"]}
-        if "curves" in stats:
-            summary["curves"] = stats["curves"]
-        if not args.out:
-            summary["rows"] = r["data"]
+        summary = _sample_json(r, stats, args.out)
+        summary.update({"n": args.n, "seed": args.seed, "plot": args.plot})
+        if comparison is not None:
+            comparison.update(_sample_json(r2, stats2, out2))
+            summary["comparison"] = comparison
         _emit(summary)
     elif not args.out:
         write_csv(r, sys.stdout)
+        if r2 is not None:
+            sys.stdout.write(f"# comparison: {comparison['label']} ({comparison['model']})\n")
+            write_csv(r2, sys.stdout)
     else:
-        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out} (model predictions)")
+        print(f"wrote {args.n} samples ({len(r['columns'])} columns) to {args.out} (model predictions)"
+              + ("" if r2 is None else f"; the {comparison['label']}'s to {out2}"))
         _print_sample_summary(r, stats)
+        if r2 is not None:
+            print(f"{comparison['label']}:")
+            _print_sample_summary(r2, stats2)
     return 0
+
+
+def _sample_json(r, stats, out) -> dict:
+    """The JSON summary of one sample table (rows included when not written to a file)."""
+    summary = {"columns": r["columns"], "ranges": r["ranges"], "fixed": r["fixed"],
+               "response": r["response"], "out": out, "note": r["note"], "summary": stats["columns"]}
+    if "curves" in stats:
+        summary["curves"] = stats["curves"]
+    if not out:
+        summary["rows"] = r["data"]
+    return summary
+
+
+def _comparison_out(path) -> str:
+    """``samples.csv`` → ``samples.comparison.csv``: where the comparison's table goes."""
+    from pathlib import Path
+    p = Path(path)
+    return str(p.with_name(f"{p.stem}.comparison{p.suffix}"))
+
+
+def _write_tables(r, path, r2, path2) -> None:
+    """Write the table(s); with a comparison both or neither (safe_io.write_files)."""
+    from treeflux.runtime.analysis import write_table
+    if r2 is None:
+        write_table(r, path)
+        return
+    import tempfile
+    from pathlib import Path
+    from treeflux.runtime.safe_io import write_files
+    with tempfile.TemporaryDirectory() as tmp:
+        blobs = {}
+        for res, target in ((r, path), (r2, path2)):
+            staged = Path(tmp) / f"{len(blobs)}{Path(target).suffix}"
+            write_table(res, staged)
+            blobs[target] = staged.read_bytes()
+        write_files(blobs)
 
 
 def _print_sample_summary(r, stats) -> None:
@@ -356,29 +482,43 @@ def _print_sample_summary(r, stats) -> None:
             print(f"  {name:<17} no finite values")
 
 
-def _plot_samples(plt, r, path):
+def _plot_samples(plt, r, path, r2=None, labels=("scheme", None)):
     import numpy as np
-    cols, data = r["columns"], r["data"]
     fig, ax = plt.subplots(figsize=(6, 4))
+    runs = [(r, labels[0], "C0", "-")]
+    if r2 is not None:
+        runs.append((r2, labels[1]["label"], "C3", "--"))
     if r["response"] is not None:
-        x, y = data[:, cols.index("ec50")], data[:, cols.index("hill_effective")]
-        ok = np.isfinite(x) & np.isfinite(y)
-        sat = data[:, cols.index("saturated")] == 1
-        ax.scatter(x[ok & sat], y[ok & sat], s=4, alpha=0.5,
-                   label=f"saturated within the range ({int((ok & sat).sum())})")
-        ax.scatter(x[ok & ~sat], y[ok & ~sat], s=6, facecolors="none", edgecolors="grey", lw=0.5,
-                   label=f"not saturated: values describe the range ({int((ok & ~sat).sum())})")
+        for res, label, color, _ in runs:
+            cols, data = res["columns"], res["data"]
+            x, y = data[:, cols.index("ec50")], data[:, cols.index("hill_effective")]
+            ok = np.isfinite(x) & np.isfinite(y)
+            sat = data[:, cols.index("saturated")] == 1
+            tag = "" if r2 is None else f"{label}: "
+            ax.scatter(x[ok & sat], y[ok & sat], s=4, alpha=0.5, color=color,
+                       label=f"{tag}saturated within the range ({int((ok & sat).sum())})")
+            ax.scatter(x[ok & ~sat], y[ok & ~sat], s=6, facecolors="none", edgecolors=color, lw=0.5,
+                       alpha=0.6, label=f"{tag}not saturated: values describe the range ({int((ok & ~sat).sum())})")
         ax.set_xscale("log")
         ax.set_xlabel(f"EC50 of {r['response']['observable']} in {r['response']['input']}")
         ax.set_ylabel("effective Hill coefficient (model prediction)")
-        ax.legend(fontsize="small")
+        ax.legend(fontsize="small", markerscale=2)
     else:
-        outputs = [c for c in cols if c not in r["ranges"]]
-        for name in outputs[:8]:
-            ax.hist(data[:, cols.index(name)], bins=40, histtype="step", label=name)
+        outputs = [c for c in r["columns"] if c not in r["ranges"]]
+        shown = outputs[:8] if r2 is None else [c for c in outputs if not c.startswith("p_")][:4] or outputs[:4]
+        for k, name in enumerate(shown):
+            for res, label, _, style in runs:
+                if name in res["columns"]:
+                    ax.hist(res["data"][:, res["columns"].index(name)], bins=40, histtype="step",
+                            color=f"C{k}", ls=style,
+                            label=name if r2 is None else f"{name} ({label})")
         ax.set_xlabel("value (model prediction)")
         ax.set_ylabel("samples")
         ax.legend(fontsize="small")
+    if r2 is not None:
+        ax.set_title(f"Model predictions: {labels[0]} vs its {labels[1]['label']}"
+                     if labels[1]["kind"] == "equilibrium_restriction"
+                     else f"Model predictions: {labels[0]} vs {labels[1]['label']}", fontsize=9)
     fig.tight_layout()
     _savefig(fig, path)
     plt.close(fig)
@@ -391,18 +531,63 @@ def cmd_fit(args) -> int:
     values = _values(args)
     data = read_table(args.data)
     _, model = _compile(args.model, args.method, args.backend)
-    r = fit(model, data, values=values, starts=args.starts, seed=args.seed)
+    r = fit(model, data, values=values, starts=args.starts, seed=args.seed, profile=args.profile)
     if args.json:
         _emit(r)
         return 0
-    print(f"fit of {len(r['parameters'])} parameters to {r['n_residuals']} values "
-          f"(cost {r['cost']:.6g}; {r['message']}):")
+    _print_fit(r)
+    return 0
+
+
+def _print_fit(r) -> None:
+    n = len(r["parameters"])
+    print(f"fit of {n} parameter{'s' if n != 1 else ''} to {r['n_residuals']} values "
+          f"(cost {r['cost']:.6g}; {r['message']}; best-fit parameters of the model):")
     for k, v in r["parameters"].items():
         u = r["uncertainties"][k]
         print(f"  {k:<16} {v:.6g}" + (f" ± {u:.3g}" if u is not None else " (uncertainty undetermined)")
               + ("  at a bound" if k in r["at_bounds"] else ""))
+    dof = r["degrees_of_freedom"]
+    print(f"  degrees of freedom: {dof} ({r['n_residuals']} residuals - {r['n_free']} "
+          f"parameter{'s' if r['n_free'] != 1 else ''})"
+          + ("" if r["residual_variance"] is None else f"; residual variance {r['residual_variance']:.4g}"))
+    ident = r["identifiability"]
+    print(f"  identifiability: {ident['message']}")
+    if ident["unidentifiable"]:
+        for item in ident["identifiable"]:
+            name = item["expression"] or "(" + ", ".join(f"{k}^{v:g}" for k, v in item["exponents"].items()) + ")"
+            if "value" in item:
+                print(f"    {name:<22} {item['value']:.6g} (standard error of its ln "
+                      f"{item['log_uncertainty']:.3g})")
+    if n == 1:
+        pass
+    elif r["correlations"] is None:
+        print("  correlations: undetermined (the covariance is singular)" if dof > 0 else
+              "  correlations: undetermined (no degrees of freedom)")
+    elif r["correlations"]:
+        print("  correlations above 0.9 (of ln parameters):")
+        for c in r["correlations"]:
+            print(f"    {c['a']} ~ {c['b']}: {c['r']:+.4f}")
+    else:
+        print("  correlations: none above 0.9 in magnitude")
+    for q, pr in (r.get("profiles") or {}).items():
+        _print_profile(q, pr)
     print(f"  uncertainties: {r['uncertainty_method']}")
-    return 0
+
+
+def _print_profile(q, pr) -> None:
+    if pr.get("threshold_delta_cost") is None:
+        print(f"  profile of {q}: {pr['note']}")
+        return
+    lo = "open" if pr["lower_open"] else f"{pr['lower']:.6g}"
+    hi = "open" if pr["upper_open"] else f"{pr['upper']:.6g}"
+    print(f"  profile-likelihood {100 * pr['level']:g}% interval of {q}: [{lo}, {hi}]"
+          + ("" if pr["wald_interval"] is None else
+             f" (linearized: [{pr['wald_interval'][0]:.6g}, {pr['wald_interval'][1]:.6g}])"))
+    for side, note in pr["notes"].items():
+        print(f"    {side} end {note}")
+    if "warning" in pr:
+        print(f"    warning: {pr['warning']}")
 
 
 # ------------------------------------------------------------------ registration
@@ -504,6 +689,15 @@ def guard_sample(args) -> None:
     _check_memory(f"--n {args.n:,} samples of {width} columns", args.n * per_sample)
 
 
+def _comparison_options(q) -> None:
+    g = q.add_mutually_exclusive_group()
+    g.add_argument("--compare-equilibrium", action="store_true",
+                   help="also run the scheme restricted to detailed balance and overlay both "
+                        "(JSON: a 'comparison' object)")
+    g.add_argument("--with", dest="with_model", metavar="OTHER.toml",
+                   help="also run a second model with the same observable and input and overlay both")
+
+
 def register(subparsers) -> None:
     """Add the analysis subcommands to an argparse sub-parsers object."""
     q = subparsers.add_parser("response", help="response curve of an observable to one input")
@@ -522,6 +716,7 @@ def register(subparsers) -> None:
     q.add_argument("--spacing", default="auto", choices=["auto", "log", "linear"],
                    help="grid spacing; auto: log when 0 < LO and the input is not signed")
     q.add_argument("--plot", metavar="FILE.png", help="draw the curve (needs matplotlib)")
+    _comparison_options(q)
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_response, guard=guard_response)
 
@@ -551,6 +746,7 @@ def register(subparsers) -> None:
     q.add_argument("--points", type=_positive_int, default=41, help="grid points per response curve")
     q.add_argument("--out", metavar="FILE", help="write the table (.csv, or .npz) atomically")
     q.add_argument("--plot", metavar="FILE.png", help="draw the samples (needs matplotlib)")
+    _comparison_options(q)
     q.add_argument("--json", action="store_true", help="print a JSON summary")
     if not any("--quiet" in a.option_strings for a in q._actions):
         q.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -561,5 +757,7 @@ def register(subparsers) -> None:
     q.add_argument("data", help="CSV: symbol columns, observable columns, optional sigma_<observable>")
     q.add_argument("--starts", type=_positive_int, default=1, help="starting points (extra ones random)")
     q.add_argument("--seed", type=_seed, default=0)
+    q.add_argument("--profile", metavar="K1,K2", help="profile-likelihood 95%% intervals of these "
+                   "fitted parameters (each fixed on a grid, the others re-fitted)")
     q.add_argument("--json", action="store_true")
     q.set_defaults(handler=cmd_fit)

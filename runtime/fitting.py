@@ -17,6 +17,15 @@ at the optimum (central differences) and s² = Σ r² / (m − p) the residual
 variance (m residuals, p free parameters); σ(θ) = θ σ(u) by the delta
 method. With sigma columns s² is the reduced chi-square, so the errors are
 scaled by the observed scatter either way.
+
+Fits explain themselves: the singular value decomposition of J names the
+combinations of parameters the data cannot identify (directions in ln θ with
+singular values below 1e-7 of the largest: "the data cannot identify
+kon*koff; only koff/kon is identifiable"), strong correlations
+(|r| > 0.9) and the degrees of freedom are reported, and profile-likelihood
+intervals (Venzon & Moolgavkar 1988; Bates & Watts ch. 6) are computed for
+the parameters asked for: each fixed on a grid, the others re-fitted, the
+interval where Δ(Σ r²) ≤ χ²₁(0.95) s².
 """
 
 from __future__ import annotations
@@ -36,7 +45,15 @@ from .progress import progress
 # (override with the environment variable TREEFLUX_TIME_BUDGET or max_seconds=).
 TIME_BUDGET_SECONDS = 3600.0
 
-__all__ = ["fit", "read_table"]
+__all__ = ["fit", "read_table", "identifiability", "profile_interval", "combination_text"]
+
+CORRELATION_SHOWN = 0.9     # |correlation| above which a pair of parameters is reported
+NULL_TOLERANCE = 1e-7       # singular value / largest below which a direction is not identifiable
+                            # (cond(J^T J) > 1e14: the covariance is not computed)
+PROFILE_REFINE = 12         # bisection steps locating each end of a profile interval
+POOR_TOLERANCE = 1e-3       # ... below which an identifiable direction is reported as poorly determined
+MAX_EXPONENT = 6            # largest integer exponent used to name a combination
+INTEGER_TOLERANCE = 2e-3    # how close to integers (after scaling) the exponents must be
 
 UNCERTAINTY_METHOD = ("standard errors sqrt(diag((J^T J)^-1) * s^2): J = Jacobian of the residuals "
                       "with respect to ln(parameter) at the optimum, s^2 = sum(r^2)/(m - p) the "
@@ -131,7 +148,8 @@ def _refuse_time(starts: int, per_start: float, budget: float, how: str) -> None
 
 
 def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
-        max_evaluations: int = 2000, max_seconds: float | None = None) -> dict:
+        max_evaluations: int = 2000, max_seconds: float | None = None,
+        profile=None) -> dict:
     """Least-squares fit of the bounded parameters to measured observables.
 
     Parameters
@@ -154,6 +172,9 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         front when ``starts`` × a lower bound of one start's cost exceeds it
         (one residual evaluation is timed; a start costs at least p + 1 of
         them), and again after the first start from its measured time.
+    profile : list or comma-separated str, optional
+        Fitted parameters to give profile-likelihood intervals
+        (:func:`profile_interval`).
 
     Returns
     -------
@@ -163,7 +184,13 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         ``log_uncertainties`` (standard errors of ln θ), ``uncertainty_method``,
         ``cost`` (½ Σ r²), ``residual_variance`` (s²), ``n_residuals``,
         ``n_free``, ``fixed``, ``at_bounds``, ``success``, ``message``,
-        ``evaluations``, ``weighted``, ``note``.
+        ``evaluations``, ``weighted``, ``note``; ``degrees_of_freedom``
+        (m − p); ``correlations`` (pairs with |r| > 0.9 from the covariance of
+        ln θ: ``a``, ``b``, ``r``; None when the covariance is undetermined);
+        ``identifiability`` (see :func:`identifiability`: ``message``,
+        ``unidentifiable`` and ``identifiable`` combinations, relative
+        ``singular_values``); with ``profile``, ``profiles`` (name →
+        interval, see :func:`profile_interval`).
     """
     try:
         from scipy.optimize import least_squares
@@ -223,6 +250,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
 
     lo = np.log([model.info.bounds[q][0] for q in free])
     hi = np.log([model.info.bounds[q][1] for q in free])
+    profile = _profile_names(profile, free)
     inner = 1e-9 * (hi - lo)
     u0 = []
     for q, a, b in zip(free, lo, hi):
@@ -237,8 +265,14 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
     budget = _time_budget(max_seconds)
     t0 = time.perf_counter()
     residuals(np.clip(np.array(u0), lo + inner, hi - inner))
-    _refuse_time(starts, (p + 1) * (time.perf_counter() - t0), budget,
-                 f"at least {p + 1} residual evaluations per start")
+    t_eval = time.perf_counter() - t0
+    _refuse_time(starts, (p + 1) * t_eval, budget, f"at least {p + 1} residual evaluations per start")
+    if profile:
+        # each profile: two ends, each at least one grid point and PROFILE_REFINE bisection
+        # steps, each a re-fit costing at least p residual evaluations
+        least = 2 * (1 + PROFILE_REFINE) * p
+        _refuse_time(len(profile), least * t_eval, budget,
+                     f"profiles: at least {least} residual evaluations per profiled parameter")
     rng = np.random.default_rng(seed)
     best = None
     with progress("fitting", total=starts, unit="start") as bar:
@@ -262,6 +296,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         "cost": 0.5 * float(r @ r),
         "n_residuals": m_res,
         "n_free": p,
+        "degrees_of_freedom": dof,
         "fixed": {k: float(v) for k, v in zip(model.symbols, X[0])
                   if k not in free and k not in fixed_cols},
         "at_bounds": [q for q, x, a, b in zip(free, u, lo, hi) if x - a < 1e-6 or b - x < 1e-6],
@@ -271,31 +306,298 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         "weighted": bool(sig_cols),
         "uncertainty_method": UNCERTAINTY_METHOD,
         "note": "best-fit parameters of the model; uncertainties are asymptotic (linearized) estimates",
+        "correlations": None,
     }
+    s2 = float(r @ r) / dof if dof > 0 else None
+    result["residual_variance"] = s2
+    result["identifiability"] = identifiability(J, free, u, s2)
     if dof <= 0:
-        result["residual_variance"] = None
         result["uncertainties"] = {q: None for q in free}
         result["log_uncertainties"] = {q: None for q in free}
         result["note"] += f"; {m_res} residuals for {p} parameters leave no degrees of freedom for uncertainties"
-        return result
-    s2 = float(r @ r) / dof
-    JTJ = J.T @ J
-    try:
-        cond = np.linalg.cond(JTJ)
-        cov = np.linalg.inv(JTJ) * s2 if np.isfinite(cond) and cond < 1e14 else None
-    except np.linalg.LinAlgError:
-        cov = None
-    result["residual_variance"] = s2
-    if cov is None:
+    else:
+        _wald(result, J, u, s2, free)
+    if profile:
+        scale = s2 if s2 is not None else (1.0 if sig_cols else None)
+        result["profiles"] = {}
+        with progress("profiling", total=len(profile), unit="parameter") as bar:
+            for q in profile:
+                result["profiles"][q] = profile_interval(residuals, u, lo, hi, free.index(q), scale,
+                                                         result["log_uncertainties"][q], free)
+                bar.update(1)
+    return result
+
+
+def _profile_names(profile, free) -> list:
+    """The parameters to profile: a list or a comma-separated string of free parameters."""
+    if not profile:
+        return []
+    names = [t.strip() for t in profile.split(",")] if isinstance(profile, str) else list(profile)
+    names = [t for t in names if t]
+    for q in names:
+        if q not in free:
+            raise EvaluationError(f"cannot profile {q!r}: it is not a fitted parameter; "
+                                  f"fitted: {', '.join(free)}")
+    return list(dict.fromkeys(names))
+
+
+def _wald(result, J, u, s2, free) -> None:
+    """Asymptotic standard errors and strong correlations (|r| > CORRELATION_SHOWN);
+    undetermined when J has a null direction (see :func:`identifiability`)."""
+    s, Vt, small = _spectrum(J, len(free))
+    if small.any():
         result["uncertainties"] = {q: None for q in free}
         result["log_uncertainties"] = {q: None for q in free}
         result["note"] += "; J^T J is singular: the parameters are not all identifiable from these data"
-    else:
-        su = np.sqrt(np.maximum(np.diag(cov), 0.0))
-        result["log_uncertainties"] = dict(zip(free, su.tolist()))
-        result["uncertainties"] = dict(zip(free, (np.exp(u) * su).tolist()))
-        result["covariance_log"] = cov.tolist()
-    return result
+        return
+    cov = (Vt.T / s ** 2) @ Vt * s2            # s² (J^T J)^-1 from the SVD of J
+    su = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    result["log_uncertainties"] = dict(zip(free, su.tolist()))
+    result["uncertainties"] = dict(zip(free, (np.exp(u) * su).tolist()))
+    result["covariance_log"] = cov.tolist()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(su, su)
+    result["correlations"] = [
+        {"a": free[i], "b": free[j], "r": float(corr[i, j])}
+        for i in range(len(free)) for j in range(i + 1, len(free))
+        if np.isfinite(corr[i, j]) and abs(corr[i, j]) > CORRELATION_SHOWN]
+
+
+# ------------------------------------------------------------------ identifiability
+
+def _rref(A: np.ndarray, tol: float = 1e-8) -> np.ndarray:
+    """Reduced row echelon form of a full-row-rank matrix (partial pivoting)."""
+    A = np.array(A, dtype=float)
+    rows, cols = A.shape
+    r = 0
+    for c in range(cols):
+        if r == rows:
+            break
+        k = r + int(np.argmax(np.abs(A[r:, c])))
+        if abs(A[k, c]) < tol:
+            continue
+        A[[r, k]] = A[[k, r]]
+        A[r] /= A[r, c]
+        for i in range(rows):
+            if i != r:
+                A[i] -= A[i, c] * A[r]
+        r += 1
+    A[np.abs(A) < tol] = 0.0
+    return A[:r]
+
+
+def _exponents(vec: np.ndarray):
+    """Small integer exponents proportional to ``vec`` (|e| ≤ MAX_EXPONENT), or None."""
+    vec = np.asarray(vec, dtype=float)
+    big = np.max(np.abs(vec))
+    if big == 0:
+        return None
+    v = vec / big
+    for q in range(1, MAX_EXPONENT + 1):
+        w = v * q
+        e = np.round(w)
+        if np.max(np.abs(w - e)) <= INTEGER_TOLERANCE and np.any(e != 0):
+            return e.astype(int)
+    return None
+
+
+def _oriented(vec: np.ndarray) -> np.ndarray:
+    """Sign convention: more positive than negative entries; on a tie, the last nonzero positive
+    (so the combination of (kon, koff) reads koff/kon)."""
+    pos, neg = int(np.sum(vec > 0)), int(np.sum(vec < 0))
+    last = vec[np.flatnonzero(vec)[-1]] if np.any(vec) else 1.0
+    return -vec if neg > pos or (neg == pos and last < 0) else vec
+
+
+def combination_text(exponents, names) -> str:
+    """``{'koff': 1, 'kon': -1}`` → ``koff/kon``; ``k1^2*k3/k2``."""
+    def part(items):
+        return "*".join(n if e == 1 else f"{n}^{e:g}" for n, e in items)
+    up = [(n, e) for n, e in zip(names, exponents) if e > 0]
+    down = [(n, -e) for n, e in zip(names, exponents) if e < 0]
+    if not up:
+        return "1/" + (part(down) if len(down) == 1 else f"({part(down)})")
+    if not down:
+        return part(up)
+    return part(up) + "/" + (part(down) if len(down) == 1 else f"({part(down)})")
+
+
+def _describe(vec: np.ndarray, names) -> dict:
+    e = _exponents(vec)
+    if e is not None:
+        e = _oriented(e)
+        return {"expression": combination_text(e, names),
+                "exponents": {n: int(k) for n, k in zip(names, e) if k != 0}}
+    v = _oriented(vec / np.max(np.abs(vec)))
+    return {"expression": None,
+            "exponents": {n: round(float(k), 4) for n, k in zip(names, v) if abs(k) > 1e-12}}
+
+
+def _spectrum(J: np.ndarray, p: int, tolerance: float = NULL_TOLERANCE):
+    """Singular values of J (p of them, zeros added when m < p), the right singular
+    vectors as rows, and which singular values count as zero (≤ tolerance · largest)."""
+    s_full = np.zeros(p)
+    _, s, Vt = np.linalg.svd(J, full_matrices=True)
+    s_full[:len(s)] = s
+    smax = float(s_full.max()) if p else 0.0
+    small = s_full <= tolerance * smax if smax > 0 else np.ones(p, dtype=bool)
+    return s_full, Vt, small
+
+
+def identifiability(J: np.ndarray, names, u=None, s2=None, *, tolerance: float = NULL_TOLERANCE) -> dict:
+    """Which combinations of ln-parameters the residuals determine, from the SVD of J.
+
+    J = U diag(s) Vᵀ (m residuals × p parameters, derivatives in ln θ). A right
+    singular vector whose singular value is below ``tolerance`` · s_max is a
+    direction in ln θ along which the residuals do not change (to first order):
+    the data cannot identify the combination ∏ θ_k^{v_k}. The orthogonal
+    complement (the row space of J) holds the identifiable combinations; both
+    are reported in reduced row echelon form, as products and ratios of
+    parameters with small integer exponents where the direction is close to
+    one (else as the exponent vector). Identifiable directions with singular
+    values below POOR_TOLERANCE · s_max are listed as ``poorly_identified``.
+    With ``u`` and ``s2``, each identifiable combination also gets its value
+    and the standard error of its ln, s·√(cᵀ(JᵀJ)⁺c).
+    """
+    names = list(names)
+    p = len(names)
+    s_full, Vt, small = _spectrum(J, p, tolerance)
+    smax = float(s_full.max()) if p else 0.0
+    weak = ~small & (s_full < POOR_TOLERANCE * smax)
+    null = _rref(Vt[small]) if small.any() else np.zeros((0, p))
+    rowspace = _rref(Vt[~small]) if (~small).any() else np.zeros((0, p))
+    out = {
+        "singular_values": (s_full / smax).tolist() if smax > 0 else s_full.tolist(),
+        "tolerance": tolerance,
+        "unidentifiable": [_describe(v, names) for v in null],
+        "identifiable": [_describe(v, names) for v in rowspace],
+        "poorly_identified": [_describe(v, names) for v in _rref(Vt[weak])] if weak.any() else [],
+        "individually_identifiable": [n for k, n in enumerate(names)
+                                      if not small.any() or np.max(np.abs(Vt[small][:, k])) < 1e-6],
+    }
+    if u is not None and s2 is not None and (~small).any():
+        V = Vt[~small].T
+        pinv = V @ np.diag(1.0 / s_full[~small] ** 2) @ V.T
+        for item in out["identifiable"]:
+            c = np.array([item["exponents"].get(n, 0.0) for n in names])
+            item["value"] = float(np.exp(c @ u))
+            item["log_uncertainty"] = float(math.sqrt(max(s2 * c @ pinv @ c, 0.0)))
+    out["message"] = _identifiability_message(out, p)
+    return out
+
+
+def _identifiability_message(info: dict, p: int) -> str:
+    def show(item):
+        if item["expression"] is not None:
+            return item["expression"]
+        return "the direction (" + ", ".join(f"{k}: {v:g}" for k, v in item["exponents"].items()) + ") in ln"
+    bad, good, weak = info["unidentifiable"], info["identifiable"], info["poorly_identified"]
+    poor = ("; poorly determined (singular value below "
+            f"{POOR_TOLERANCE:g} of the largest): " + ", ".join(show(w) for w in weak)) if weak else ""
+    if not bad:
+        return ("the parameter is" if p == 1 else f"all {p} parameters are") + \
+            " locally identifiable from these data" + poor
+    text = "the data cannot identify " + ", ".join(show(b) for b in bad)
+    if not good:
+        return text + "; no combination of the parameters is identifiable"
+    if len(good) == 1:
+        return text + f"; only {show(good[0])} is identifiable" + poor
+    return text + "; identifiable: " + ", ".join(show(g) for g in good) + poor
+
+
+# ------------------------------------------------------------------ profile likelihood
+
+def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, *,
+                     level: float = 0.95, max_steps: int = 40, refine: int | None = None) -> dict:
+    """Profile-likelihood interval of parameter ``k``.
+
+    ln θ_k is fixed on a grid walking out from the optimum in both directions
+    (steps growing by 1.5×, starting from half the standard error of ln θ_k, or
+    0.25 without one); at each point the other parameters are re-fitted. The
+    interval is where Δcost ≤ ½ χ²₁(level) · scale (scale: the residual
+    variance s², as for the standard errors — so on a linear problem the
+    interval equals the Wald interval θ̂·exp(±z σ_ln)); each end is refined by
+    bisection. An end is open when Δcost stays below the threshold up to the
+    parameter's bound.
+    """
+    from scipy.optimize import least_squares
+    from scipy.stats import chi2, norm
+    refine = PROFILE_REFINE if refine is None else refine
+    name = names[k]
+    if scale is None:
+        return {"parameter": name, "lower": None, "upper": None, "lower_open": None, "upper_open": None,
+                "note": "no degrees of freedom to scale the threshold (and no sigma columns)"}
+    threshold = 0.5 * float(chi2.ppf(level, 1)) * scale
+    others = [j for j in range(len(u_hat)) if j != k]
+    r0 = residuals(u_hat)
+    cost0 = 0.5 * float(r0 @ r0)
+    points = []
+
+    def at(t, start):
+        full = np.array(u_hat, dtype=float)
+        full[k] = t
+        if others:
+            lo_o, hi_o = lo[others], hi[others]
+            x0 = np.clip(start, lo_o + 1e-9 * (hi_o - lo_o), hi_o - 1e-9 * (hi_o - lo_o))
+
+            def sub(v):
+                full[others] = v
+                return residuals(full)
+            res = least_squares(sub, x0, bounds=(lo_o, hi_o), method="trf", xtol=1e-12,
+                                ftol=1e-12, gtol=1e-12, max_nfev=500)
+            full[others] = res.x
+        rr = residuals(full)
+        d = 0.5 * float(rr @ rr) - cost0
+        points.append((float(math.exp(t)), d))
+        return d, full[others].copy()
+
+    step0 = 0.25 if log_sigma is None or not np.isfinite(log_sigma) or log_sigma <= 0 \
+        else float(np.clip(0.5 * log_sigma, 1e-4, 1.0))
+    ends, notes, better = {}, {}, 0.0
+    for side, sign, bound in (("lower", -1.0, lo[k]), ("upper", 1.0, hi[k])):
+        t_in, start_in, step = u_hat[k], u_hat[others], step0
+        end = None
+        for _ in range(max_steps):
+            t = t_in + sign * step
+            last = sign * (t - bound) >= 0
+            if last:
+                t = bound
+            d, start = at(t, start_in)
+            better = min(better, d)
+            if d > threshold:
+                t_out = t
+                for _ in range(refine):
+                    mid = 0.5 * (t_in + t_out)
+                    dm, sm = at(mid, start_in)
+                    if dm > threshold:
+                        t_out = mid
+                    else:
+                        t_in, start_in = mid, sm
+                end = math.exp(0.5 * (t_in + t_out))
+                break
+            t_in, start_in = t, start
+            if last:
+                notes[side] = (f"open: Δcost stays ≤ {threshold:.3g} out to the parameter's "
+                               f"{'min' if sign < 0 else 'max'} {math.exp(bound):.6g}")
+                break
+            step *= 1.5
+        else:
+            notes[side] = f"open: Δcost stays ≤ {threshold:.3g} over the {max_steps} grid steps taken"
+        ends[side] = end
+    wald = None
+    if log_sigma is not None and np.isfinite(log_sigma):
+        z = float(norm.ppf(0.5 + level / 2))
+        wald = [math.exp(u_hat[k] - z * log_sigma), math.exp(u_hat[k] + z * log_sigma)]
+    out = {"parameter": name, "best": math.exp(u_hat[k]), "level": level,
+           "threshold_delta_cost": threshold,
+           "lower": ends["lower"], "upper": ends["upper"],
+           "lower_open": ends["lower"] is None, "upper_open": ends["upper"] is None,
+           "notes": notes, "wald_interval": wald,
+           "points": sorted(points)}
+    if better < -1e-9 * max(1.0, cost0):
+        out["warning"] = (f"profiling found a better fit (cost lower by {-better:.3g}): the reported optimum "
+                          "is not the global one; refit with more --starts")
+    return out
 
 
 def _central_jacobian(fun, u, step: float = 1e-6) -> np.ndarray:
