@@ -146,20 +146,61 @@ def _elimination_cost(n: int, edges, comps):
 
 
 def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
+    """One IR node per observable, O_k = Σ_i p_i·w_ik(θ), and the constant
+    weights (n_states × n_observables; 0 where a weight is an expression).
+
+    Weights are lowered from the symbols (never from the front end's scaled
+    labels), so the derivative passes see them as ordinary functions of θ.
+    Terms whose weight is ``("neg", ℓ)`` (the backward flux of a net flux)
+    are summed apart and subtracted once at the top: O = J+ − J−. That is
+    the only subtraction an observable adds above the labels (the ``p``
+    group stays subtraction-free), and its rounding error is bounded by a
+    few ε·(J+ + J−) in absolute terms — a net flux near zero (near
+    detailed balance) is known to that absolute accuracy, not relatively."""
     g = fn.graph
     index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
     p = fn.group("p")
-    nodes, weights = [], [[0.0] * len(scheme.observables) for _ in scheme.states]
-    for k, (name, w) in enumerate(scheme.observables.items()):
-        terms = []
-        for state, weight in w.items():
-            weights[index[state]][k] = weight
-            if weight == 1:
-                terms.append(p[index[state]])
-            elif weight != 0:
-                terms.append(g.mul(g.const(weight), p[index[state]]))
-        nodes.append(g.add(*terms) if terms else g.const(0))
+    nodes, weights = [], _constant_weights(scheme)
+    for name, terms in scheme.observable_terms().items():
+        sums: dict = {1: [], -1: []}
+        for state, label in terms:
+            sign = -1 if label[0] == "neg" else 1
+            label = label[1] if sign < 0 else label
+            if label == ("num", 0):
+                continue
+            pi = p[index[state]]
+            sums[sign].append(pi if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), pi))
+        plus, minus = (g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1]))
+        if minus is None:
+            nodes.append(plus if plus is not None else g.const(0))
+        else:
+            nodes.append(g.sub(plus if plus is not None else g.const(0), minus))
     return nodes, weights
+
+
+def _constant_weights(scheme: Scheme) -> list[list[float]]:
+    """n_states × n_observables matrix of the weights that are numbers (the
+    runtime's fast path); expression weights are carried by
+    :func:`observable_trees` and leave 0 here."""
+    index = scheme.index()
+    terms = scheme.observable_terms()
+    weights = [[0.0] * len(terms) for _ in scheme.states]
+    for k, rows in enumerate(terms.values()):
+        for state, label in rows:
+            if label[0] == "num":
+                weights[index[state]][k] += float(label[1])
+    return weights
+
+
+def observable_trees(scheme: Scheme) -> list:
+    """Every observable term as plain data for the runtime (no compiler needed
+    there): ``[observable index, state index, weight tree]``, the tree in the
+    form of :func:`label_trees`."""
+    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    return [[k, index[state], _runtime_tree(label, column)]
+            for k, rows in enumerate(scheme.observable_terms().values()) for state, label in rows]
 
 
 def _simplify(fn: ir.Function, report: list | None) -> ir.Function:
@@ -237,9 +278,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                              f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
         kernel, groups = None, {}
         comps = _structure().terminal_components(n, edges)
-        for k, w in enumerate(scheme.observables.values()):
-            for state, weight in w.items():
-                weights[scheme.index()[state]][k] = weight
+        weights = _constant_weights(scheme)
     else:
         t0 = time.perf_counter()
         fn, info = build(scheme, method=chosen.method,
@@ -289,6 +328,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
 def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
     method = info.method
     info.label_trees = label_trees(scheme)
+    info.observable_terms = observable_trees(scheme)
     return CompiledModel(info, kernel, label_kernel,
                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
@@ -325,16 +365,16 @@ def label_trees(scheme: Scheme) -> list:
     """Every edge label as plain data for the runtime's multiprecision path:
     ``["num", "p/q"]``, ``["sym", column]``, ``[op, a]`` or ``[op, a, b]``."""
     column = {name: j for j, name in enumerate(scheme.symbols)}
+    return [_runtime_tree(e.label, column) for e in scheme.edges]
 
-    def convert(label):
-        op = label[0]
-        if op == "num":
-            return ["num", str(label[1])]
-        if op == "sym":
-            return ["sym", column[label[1]]]
-        return [op, *(convert(a) for a in label[1:])]
 
-    return [convert(e.label) for e in scheme.edges]
+def _runtime_tree(label, column: dict) -> list:
+    op = label[0]
+    if op == "num":
+        return ["num", str(label[1])]
+    if op == "sym":
+        return ["sym", column[label[1]]]
+    return [op, *(_runtime_tree(a, column) for a in label[1:])]
 
 
 def _label_function(scheme: Scheme) -> ir.Function:
