@@ -52,21 +52,23 @@ def briggs_haldane():
     return s
 
 
-def ordered_bi_bi():
-    """E + A ⇌ EA, EA + B ⇌ EAB (central complex), EAB → EQ + P, EQ → E + Q."""
-    s = Scheme(name="ordered bi-bi")
+def _bi_bi(name, edges, inputs=("A", "B", "P", "Q")):
+    """A two-substrate mechanism: rate constants k1..k8, one edge each."""
+    s = Scheme(name=name)
     for k in [f"k{i}" for i in range(1, 9)]:
         s.add_parameter(k, value=1.0)
-    for c in ("A", "B", "P", "Q"):
+    for c in inputs:
         s.add_input(c, value=1.0)
-    s.add_edge("E", "EA", "k1*A")
-    s.add_edge("EA", "E", "k2")
-    s.add_edge("EA", "EAB", "k3*B")
-    s.add_edge("EAB", "EA", "k4")
-    s.add_edge("EAB", "EQ", "k5")      # P released
-    s.add_edge("EQ", "EAB", "k6*P")
-    s.add_edge("EQ", "E", "k7")        # Q released
-    s.add_edge("E", "EQ", "k8*Q")
+    for source, target, rate in edges:
+        s.add_edge(source, target, rate)
+    return s
+
+
+def ordered_bi_bi():
+    """E + A ⇌ EA, EA + B ⇌ EAB (central complex), EAB → EQ + P, EQ → E + Q."""
+    s = _bi_bi("ordered bi-bi", [("E", "EA", "k1*A"), ("EA", "E", "k2"), ("EA", "EAB", "k3*B"),
+                                 ("EAB", "EA", "k4"), ("EAB", "EQ", "k5"), ("EQ", "EAB", "k6*P"),
+                                 ("EQ", "E", "k7"), ("E", "EQ", "k8*Q")])
     s.add_observable("v", {"flux": "EAB->EQ"})           # per enzyme
     s.add_observable("v_net", {"net_flux": "EAB->EQ"})
     return s
@@ -74,19 +76,9 @@ def ordered_bi_bi():
 
 def ping_pong():
     """E + A ⇌ EA → F + P, F + B ⇌ FB → E + Q (modified enzyme F)."""
-    s = Scheme(name="ping-pong bi-bi")
-    for k in [f"k{i}" for i in range(1, 9)]:
-        s.add_parameter(k, value=1.0)
-    for c in ("A", "B", "P", "Q", "E0"):
-        s.add_input(c, value=1.0)
-    s.add_edge("E", "EA", "k1*A")
-    s.add_edge("EA", "E", "k2")
-    s.add_edge("EA", "F", "k3")        # P released
-    s.add_edge("F", "EA", "k4*P")
-    s.add_edge("F", "FB", "k5*B")
-    s.add_edge("FB", "F", "k6")
-    s.add_edge("FB", "E", "k7")        # Q released
-    s.add_edge("E", "FB", "k8*Q")
+    s = _bi_bi("ping-pong bi-bi", [("E", "EA", "k1*A"), ("EA", "E", "k2"), ("EA", "F", "k3"),
+                                   ("F", "EA", "k4*P"), ("F", "FB", "k5*B"), ("FB", "F", "k6"),
+                                   ("FB", "E", "k7"), ("E", "FB", "k8*Q")], ("A", "B", "P", "Q", "E0"))
     s.add_observable("v", {"EA": "k3*E0"})               # velocity, a rate expression
     s.add_observable("v_flux", {"flux": "FB->E"})        # the same per enzyme, at steady state
     return s
@@ -359,71 +351,20 @@ def _write(tmp_path, name, text):
     return str(path)
 
 
-PING_PONG_TOML = """
-    name = "ping-pong"
-    [parameters]
-    k1 = 1.0
-    k2 = 1.0
-    k3 = 1.0
-    k4 = 1.0
-    k5 = 1.0
-    k6 = 1.0
-    k7 = 1.0
-    k8 = 1.0
-    [inputs]
-    A = 1.0
-    B = 1.0
-    P = 1.0
-    Q = 1.0
-    [[edges]]
-    source = "E"
-    target = "EA"
-    rate = "k1*A"
-    [[edges]]
-    source = "EA"
-    target = "E"
-    rate = "k2"
-    [[edges]]
-    source = "EA"
-    target = "F"
-    rate = "k3"
-    [[edges]]
-    source = "F"
-    target = "EA"
-    rate = "k4*P"
-    [[edges]]
-    source = "F"
-    target = "FB"
-    rate = "k5*B"
-    [[edges]]
-    source = "FB"
-    target = "F"
-    rate = "k6"
-    [[edges]]
-    source = "FB"
-    target = "E"
-    rate = "k7"
-    [[edges]]
-    source = "E"
-    target = "FB"
-    rate = "k8*Q"
-    [observables]
-    v = { flux = "EA->F" }
-    """
-
-
 def test_formula_cli_ping_pong_has_no_constant_term(tmp_path, capsys):
-    path = _write(tmp_path, "pp.toml", PING_PONG_TOML)
-    assert main(["formula", path, "--observable", "v", "--collect", "A,B", "--set", "P=0", "--set", "Q=0"]) == 0
+    path = tmp_path / "pp.toml"
+    path.write_text(model_text(ping_pong()))       # the model file, written by treeflux's writer
+    assert main(["formula", str(path), "--observable", "v", "--collect", "A,B",
+                 "--set", "P=0", "--set", "Q=0"]) == 0
     text = capsys.readouterr().out
     lines = {ln.split(" = ", 1)[0]: ln.split(" = ", 1)[1] for ln in text.splitlines() if ln[:2] in ("N ", "D ")}
-    names = {n: sympy.Symbol(n, positive=True) for n in ["A", "B"] + [f"k{i}" for i in range(1, 9)]}
+    names = {n: sympy.Symbol(n, positive=True) for n in ["A", "B", "E0"] + [f"k{i}" for i in range(1, 9)]}
     N, D = (sympy.sympify(lines[x], locals=names) for x in ("N", "D"))
     A, B = names["A"], names["B"]
     assert D.subs({A: 0, B: 0}) == 0                                   # no constant term
     assert {m for m, _ in sympy.Poly(D, A, B).terms()} == {(1, 0), (0, 1), (1, 1)}
     k = [names[f"k{i}"] for i in range(1, 9)]
-    assert sympy.simplify(N / D - ping_pong_law(k, A, B)) == 0          # Segel 1975 (from memory)
+    assert sympy.simplify(N / D - ping_pong_law(k, A, B, names["E0"])) == 0   # Segel 1975 (from memory)
 
 
 def test_formula_ordered_bi_bi_has_the_constant_term():
@@ -504,22 +445,10 @@ def test_bad_observables_refused_in_one_line(spec, message):
 
 def test_net_flux_needs_the_reverse_edge(tmp_path, capsys):
     path = _write(tmp_path, "m.toml", """
-        [parameters]
-        k = 1.0
-        [[edges]]
-        source = "A"
-        target = "B"
-        rate = "k"
-        [[edges]]
-        source = "B"
-        target = "C"
-        rate = "k"
-        [[edges]]
-        source = "C"
-        target = "A"
-        rate = "k"
-        [observables]
-        J = { net_flux = "A->B" }
+        parameters = { k = 1.0 }
+        edges = [{ source = "A", target = "B", rate = "k" }, { source = "B", target = "C", rate = "k" },
+                 { source = "C", target = "A", rate = "k" }]
+        observables = { J = { net_flux = "A->B" } }
         """)
     assert main(["eval", path]) == 2
     err = capsys.readouterr().err.strip()
