@@ -152,31 +152,73 @@ def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[
     Weights are lowered from the symbols (never from the front end's scaled
     labels), so the derivative passes see them as ordinary functions of θ.
     Terms whose weight is ``("neg", ℓ)`` (the backward flux of a net flux)
-    are summed apart and subtracted once at the top: O = J+ − J−. That is
+    or a negative number are summed apart and subtracted once at the top: O = J+ − J−. That is
     the only subtraction an observable adds above the labels (the ``p``
     group stays subtraction-free), and its rounding error is bounded by a
     few ε·(J+ + J−) in absolute terms — a net flux near zero (near
     detailed balance) is known to that absolute accuracy, not relatively."""
     g = fn.graph
-    index = scheme.index()
-    column = {name: j for j, name in enumerate(scheme.symbols)}
-    p = fn.group("p")
-    nodes, weights = [], _constant_weights(scheme)
-    for name, terms in scheme.observable_terms().items():
-        sums: dict = {1: [], -1: []}
-        for state, label in terms:
-            sign = -1 if label[0] == "neg" else 1
-            label = label[1] if sign < 0 else label
-            if label == ("num", 0):
-                continue
-            pi = p[index[state]]
-            sums[sign].append(pi if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), pi))
-        plus, minus = (g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1]))
+    nodes = []
+    for plus, minus in _observable_parts(scheme, fn):
         if minus is None:
             nodes.append(plus if plus is not None else g.const(0))
         else:
             nodes.append(g.sub(plus if plus is not None else g.const(0), minus))
-    return nodes, weights
+    return nodes, _constant_weights(scheme)
+
+
+def _observable_parts(scheme: Scheme, fn: ir.Function) -> list[tuple]:
+    """(J+, J−) of every observable: the sums of its terms with positive and
+    with negated weights (``("neg", ℓ)`` or a negative number), each
+    subtraction-free above the labels, or None where there are none."""
+    g = fn.graph
+    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    p = fn.group("p")
+    parts = []
+    for terms in scheme.observable_terms().values():
+        sums: dict = {1: [], -1: []}
+        for state, label in terms:
+            sign = -1 if label[0] == "neg" or (label[0] == "num" and label[1] < 0) else 1
+            label = label[1] if label[0] == "neg" else ("num", -label[1]) if sign < 0 else label
+            if label == ("num", 0):
+                continue
+            pi = p[index[state]]
+            sums[sign].append(pi if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), pi))
+        parts.append(tuple(g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1])))
+    return parts
+
+
+def _signed_groups(scheme: Scheme, fn: ir.Function, kept: ir.Function) -> None:
+    """Groups ``obs_plus``/``obs_minus`` (J+ and J− of every observable) when
+    some observable subtracts: their Jacobians are taken apart and subtracted
+    at the end (:func:`_observable_jacobian`), since the relative adjoints of
+    J+ − J− divide by its value, which is exactly 0 at detailed balance."""
+    parts = _observable_parts(scheme, fn)
+    if any(minus is not None for _, minus in parts):
+        zero = fn.graph.const(0)
+        kept.add_group("obs_plus", [a if a is not None else zero for a, _ in parts])
+        kept.add_group("obs_minus", [b if b is not None else zero for _, b in parts])
+
+
+def _observable_jacobian(fn: ir.Function) -> ir.Function:
+    """Add ``obs_jac`` (log form): directly, or as jac(J+) − jac(J−) when the
+    observables subtract (the helper groups are dropped afterwards)."""
+    from .simplify import differentiate
+
+    if "obs_minus" not in fn.groups:
+        return differentiate(fn, group="obs", log=True)
+    fn = differentiate(fn, group="obs_plus", log=True)
+    fn = differentiate(fn, group="obs_minus", log=True)
+    g = fn.graph
+    jac = [a if g.ops[b] == "const" and g.data[b] == 0 else g.sub(a, b)
+           for a, b in zip(fn.group("obs_plus_jac"), fn.group("obs_minus_jac"))]
+    out = ir.Function(g, fn.n_inputs, [], labels=fn.labels)
+    for name in fn.groups:
+        if name not in ("obs_plus", "obs_minus", "obs_plus_jac", "obs_minus_jac"):
+            out.add_group(name, fn.group(name))
+    out.add_group("obs_jac", jac)
+    return ir.compact(out)
 
 
 def _constant_weights(scheme: Scheme) -> list[list[float]]:
@@ -291,6 +333,8 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
             if obs_names:
                 nodes, weights = _observable_nodes(scheme, fn)
                 kept.add_group("obs", nodes)
+                if jacobian:
+                    _signed_groups(scheme, fn, kept)
         else:
             kept.add_group("basis", fn.group("basis"))
         t0 = time.perf_counter()
@@ -349,7 +393,7 @@ def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, along: str 
         # the runtime divides by the symbol for the plain form.
         fn = differentiate(fn, group="p", log=True)
         if "obs" in fn.groups:
-            fn = differentiate(fn, group="obs", log=True)
+            fn = _observable_jacobian(fn)
     if along is not None:
         names = [s.name for s in scheme.inputs]
         if along not in names:
