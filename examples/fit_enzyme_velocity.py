@@ -6,8 +6,8 @@ The data are invented demo data: velocities generated from the model itself
 at chosen "true" values, with 3 % multiplicative noise from a seeded
 generator. The fit uses the compiled Jacobian of the velocity observable
 (k_cat*E0*p(ES), a rate observable) with respect to log k_cat and log k_on,
-reports standard errors, derives Km = (k_off + k_cat)/k_on with its
-uncertainty (delta method on the log covariance), and draws the data with
+reports standard errors, derives Km = (k_off + k_cat)/k_on·k_rel/(k_cat + k_rel)
+with its uncertainty (delta method on the log covariance), and draws the data with
 the model prediction.
 """
 
@@ -37,20 +37,23 @@ def main(figure="enzyme_velocity_fit.png"):
     v = clean * (1 + 0.03 * rng.standard_normal(S.size))
     sigma = 0.03 * v
     r = fit(model, {"S": S, "velocity": v, "sigma_velocity": sigma}, values={"E0": E0}, starts=3)
-    k_off = r["fixed"]["k_off"]
+    k_off, k_rel = r["fixed"]["k_off"], r["fixed"]["k_rel"]
     print(f"fit of {r['n_free']} parameters to {r['n_residuals']} initial velocities "
           f"(Jacobian: {r['jacobian']}; chi2/dof = {r['residual_variance']:.3g}):")
     for name, value in r["parameters"].items():
         print(f"  {name:<6} = {value:.5g} ± {r['uncertainties'][name]:.2g}   (generated with {TRUE[name]:g})")
     kc, kon = r["parameters"]["k_cat"], r["parameters"]["k_on"]
-    Km = (k_off + kc) / kon
-    # ln Km = ln(k_off + e^{u_cat}) - u_on: gradient in (u_cat, u_on) order of the fit
-    grad = {"k_cat": kc / (k_off + kc), "k_on": -1.0}
+
+    def michaelis(kc, kon):
+        return (k_off + kc) / kon * k_rel / (kc + k_rel)
+
+    Km = michaelis(kc, kon)
+    # ln Km = ln(k_off + k_cat) - ln k_on + ln k_rel - ln(k_cat + k_rel): gradient in the fit's ln θ order
+    grad = {"k_cat": kc / (k_off + kc) - kc / (kc + k_rel), "k_on": -1.0}
     g = np.array([grad[q] for q in r["parameters"]])
     sKm = Km * math.sqrt(g @ np.array(r["covariance_log"]) @ g)
-    Km_true = (k_off + TRUE["k_cat"]) / TRUE["k_on"]
-    print(f"  Km     = {Km:.5g} ± {sKm:.2g} µM   (generated with {Km_true:g})")
-    print(f"  Vmax   = {kc * E0:.5g} µM/s")
+    print(f"  Km     = {Km:.5g} ± {sKm:.2g} µM   (generated with {michaelis(TRUE['k_cat'], TRUE['k_on']):.5g})")
+    print(f"  Vmax   = {E0 * kc * k_rel / (kc + k_rel):.5g} µM/s")
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt

@@ -30,3 +30,24 @@ def test_enzyme_velocity_fit_script(tmp_path):
     png = (tmp_path / "fit.png").read_bytes()
     assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 10_000
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".fit.png")] == []  # no leftovers
+
+
+def test_enzyme_velocity_model_is_the_hyperbola_it_states():
+    """The example's velocity against the closed form in its header: the
+    Briggs-Haldane velocity (Briggs & Haldane 1925) with a product-release
+    step, Vmax = E0·k_cat·k_rel/(k_cat + k_rel),
+    Km = (k_off + k_cat)/k_on · k_rel/(k_cat + k_rel) (derived by hand, common practice)."""
+    import numpy as np
+
+    from treeflux.compiler import compile_scheme, load
+
+    m = compile_scheme(load(SCRIPT.parent / "enzyme_velocity.toml"), cache=False)
+    rng = np.random.default_rng(0)
+    X = {k: 10 ** rng.uniform(-2, 2, 30) for k in m.symbols}
+    O = m.observables(X)
+    kc, kr = X["k_cat"], X["k_rel"]
+    Vmax = X["E0"] * kc * kr / (kc + kr)
+    Km = (X["k_off"] + kc) / X["k_on"] * kr / (kc + kr)
+    names = m.observable_names
+    np.testing.assert_allclose(O[:, names.index("velocity")], Vmax * X["S"] / (Km + X["S"]), rtol=1e-13)
+    np.testing.assert_allclose(O[:, names.index("turnover")] * X["E0"], O[:, names.index("velocity")], rtol=1e-14)
