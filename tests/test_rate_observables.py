@@ -491,3 +491,22 @@ def test_response_sample_and_fit_handle_rate_observables():
     assert res["jacobian"] == "compiled"
     assert abs(res["parameters"]["k_cat"] / 5.0 - 1) < 1e-6
     assert abs(res["parameters"]["k_on"] / 2.0 - 1) < 1e-6
+
+
+def test_emitted_c_prints_rate_observables_at_model_values(tmp_path):
+    import shutil
+
+    cc = shutil.which("gcc") or shutil.which("cc")
+    if cc is None:
+        pytest.skip("no C compiler on this machine")
+    path = os.path.join(os.path.dirname(__file__), "..", "examples", "enzyme_velocity.toml")
+    m = compile_scheme(load(path), cache=False)
+    m.emit("c", tmp_path)
+    sources = [p.name for p in tmp_path.glob("*.c")]
+    subprocess.run([cc, "-std=c99", "-Wall", "-Wextra", "-pedantic", "-Werror", "-O1", "-o", "ex", *sources, "-lm"],
+                   cwd=tmp_path, check=True)
+    res = subprocess.run([str(tmp_path / "ex")], capture_output=True, text=True, check=True)
+    printed = {ln.split("\t")[1]: float(ln.split("\t")[0]) for ln in res.stdout.splitlines() if "\t" in ln}
+    O = m.observables({})[0]
+    for name, value in zip(m.observable_names, O):
+        assert abs(printed[name] - value) <= 1e-15 * abs(value), (name, printed[name], value)
