@@ -30,6 +30,7 @@ from . import ir
 from .errors import ModelError, TooLargeError
 from .frontend import build
 from .model import Scheme
+from .pipeline import weighted_node
 
 __all__ = ["substituted", "shared_form", "coefficient_form", "MAX_TERMS", "MAX_SHARED_OPS"]
 
@@ -149,21 +150,6 @@ def _readable(label):
     if label[0] == "sym":
         return label
     return (label[0], *(_readable(a) for a in label[1:]))
-
-
-def _weighted(g: ir.Graph, terms, rho: list, index: dict, column: dict) -> int:
-    """The IR node Σ_i w_i·ρ_i of the target (the forward terms, minus the
-    backward terms of a net flux)."""
-    sums: dict = {1: [], -1: []}
-    for st, label in terms:
-        sign = -1 if label[0] == "neg" else 1
-        label = label[1] if sign < 0 else label
-        r = rho[index[st]]
-        if label == ("num", 0) or (g.ops[r] == "const" and g.data[r] == 0):
-            continue
-        sums[sign].append(r if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), r))
-    plus, minus = (g.add(*xs) if len(xs) > 1 else xs[0] if xs else g.const(0) for xs in (sums[1], sums[-1]))
-    return plus if not sums[-1] else g.sub(plus, minus)
 
 
 # ---------------------------------------------------------------- printing the DAG
@@ -302,7 +288,7 @@ def shared_form(scheme: Scheme, *, state=None, observable=None, method: str = "e
     head = pr.name(target) if target else None
     if weights:
         column = {name: j for j, name in enumerate(scheme.symbols)}
-        node = _weighted(g, weights, rho, index, column)
+        node = weighted_node(g, weights, rho, index, column)
         num, prec = pr.expr(node, {**named, **{rho[i]: rho_text[i] for i in range(n)
                                                if g.ops[rho[i]] not in ("const", "input")}})
         result = rf"\frac{{{num}}}{{Z}}" if latex else (f"({num})/Z" if prec < 3 else f"{num}/Z")
@@ -353,7 +339,7 @@ def coefficient_form(scheme: Scheme, *, collect, state=None, observable=None, se
     fn, _info = build(scheme, method="trees", scale=False)
     rho = fn.group("rho")
     column = {name: j for j, name in enumerate(scheme.symbols)}
-    top = _weighted(fn.graph, weights, rho, scheme.index(), column)
+    top = weighted_node(fn.graph, weights, rho, scheme.index(), column)
     *exprs, num = ir.to_sympy(fn.graph, list(rho) + [top], scheme.symbols)
     den = sympy.Add(*exprs)
     ratio = sympy.cancel(sympy.together(num / den))

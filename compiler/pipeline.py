@@ -157,36 +157,45 @@ def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[
     group stays subtraction-free), and its rounding error is bounded by a
     few ε·(J+ + J−) in absolute terms — a net flux near zero (near
     detailed balance) is known to that absolute accuracy, not relatively."""
-    g = fn.graph
-    nodes = []
-    for plus, minus in _observable_parts(scheme, fn):
-        if minus is None:
-            nodes.append(plus if plus is not None else g.const(0))
-        else:
-            nodes.append(g.sub(plus if plus is not None else g.const(0), minus))
+    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    p = fn.group("p")
+    nodes = [weighted_node(fn.graph, terms, p, index, column) for terms in scheme.observable_terms().values()]
     return nodes, _constant_weights(scheme)
+
+
+def weighted_node(g: ir.Graph, terms, values: list, index: dict, column: dict) -> int:
+    """The node J+ − J− (or J+ alone) of one observable (see :func:`signed_sums`)."""
+    plus, minus = signed_sums(g, terms, values, index, column)
+    plus = plus if plus is not None else g.const(0)
+    return plus if minus is None else g.sub(plus, minus)
 
 
 def _observable_parts(scheme: Scheme, fn: ir.Function) -> list[tuple]:
     """(J+, J−) of every observable: the sums of its terms with positive and
     with negated weights (``("neg", ℓ)`` or a negative number), each
     subtraction-free above the labels, or None where there are none."""
-    g = fn.graph
     index = scheme.index()
     column = {name: j for j, name in enumerate(scheme.symbols)}
     p = fn.group("p")
-    parts = []
-    for terms in scheme.observable_terms().values():
-        sums: dict = {1: [], -1: []}
-        for state, label in terms:
-            sign = -1 if label[0] == "neg" or (label[0] == "num" and label[1] < 0) else 1
-            label = label[1] if label[0] == "neg" else ("num", -label[1]) if sign < 0 else label
-            if label == ("num", 0):
-                continue
-            pi = p[index[state]]
-            sums[sign].append(pi if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), pi))
-        parts.append(tuple(g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1])))
-    return parts
+    return [signed_sums(fn.graph, terms, p, index, column) for terms in scheme.observable_terms().values()]
+
+
+def signed_sums(g: ir.Graph, terms, values: list, index: dict, column: dict) -> tuple:
+    """(Σ w_i·x_i over the positive weights, Σ |w_i|·x_i over the negated
+    ones) of one observable's terms [(state, weight label)], with x_i =
+    ``values[index[state]]`` (the probabilities, or the unnormalised
+    weights ρ for printing); None for an empty sum. Zero weights and
+    states fixed at 0 (transient states) drop out."""
+    sums: dict = {1: [], -1: []}
+    for state, label in terms:
+        sign = -1 if label[0] == "neg" or (label[0] == "num" and label[1] < 0) else 1
+        label = label[1] if label[0] == "neg" else ("num", -label[1]) if sign < 0 else label
+        x = values[index[state]]
+        if label == ("num", 0) or (g.ops[x] == "const" and g.data[x] == 0):
+            continue
+        sums[sign].append(x if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), x))
+    return tuple(g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1]))
 
 
 def _signed_groups(scheme: Scheme, fn: ir.Function, kept: ir.Function) -> None:
