@@ -30,6 +30,7 @@ from . import ir
 from .errors import ModelError, TooLargeError
 from .frontend import build
 from .model import Scheme
+from .pipeline import weighted_node
 
 __all__ = ["substituted", "shared_form", "coefficient_form", "MAX_TERMS", "MAX_SHARED_OPS"]
 
@@ -99,11 +100,30 @@ def substituted(scheme: Scheme, sets: dict) -> Scheme:
                 raise ModelError(f"{scheme.origin}: edge {e.source}->{e.target}: rate {e.rate!r} "
                                  f"is negative at the values given")
         out.add_edge(e.source, e.target, label_text(label))
-    for name, weights in scheme.observables.items():
-        out.add_observable(name, weights)
+    for name, terms in scheme.observable_terms().items():
+        out.add_observable(name, _substituted_weights(terms, values, scheme.states[0]))
     if not out.edges:
         raise ModelError(f"{scheme.origin}: every rate is zero at the values given")
     return out
+
+
+def _substituted_weights(terms, values: dict, first: str) -> dict:
+    """An observable's terms after substitution, as state → weight text (a
+    flux through an edge whose rate became 0 is 0 and drops out)."""
+    from .parse import label_text
+
+    merged: dict = {}
+    for st, label in terms:
+        label = _subst(label, values)
+        if not any(True for _ in _symbols(label)):
+            g = ir.Graph()
+            try:
+                if ir.evaluate(g, [ir.lower_label(g, label, {})], [], "exact")[0] == 0:
+                    continue
+            except (ZeroDivisionError, ValueError, TypeError, OverflowError):
+                pass  # kept as written: the compiled form reports it
+        merged[st] = ("add", merged[st], label) if st in merged else label
+    return {st: label_text(w) for st, w in merged.items()} or {first: 0.0}
 
 
 def _symbols(label):
@@ -114,21 +134,33 @@ def _symbols(label):
             yield from _symbols(a)
 
 
-def _target(scheme: Scheme, state, observable) -> tuple[str, dict]:
-    """(name, {state: weight}) of what is asked for."""
+def _target(scheme: Scheme, state, observable) -> tuple[str, list]:
+    """(name, [(state, weight label)]) of what is asked for: an observable
+    reduced to Σ_i p_i·w_i (numbers, rate expressions, edge rates for fluxes,
+    ``("neg", ℓ)`` for the backward half of a net flux)."""
     if state is not None and observable is not None:
         raise ModelError("ask for a state or an observable, not both")
     if observable is not None:
-        obs = scheme.observables
+        obs = scheme.observable_terms()
         if observable not in obs:
             raise ModelError(f"{scheme.origin}: unknown observable {observable!r}; "
                              f"observables are {', '.join(obs) or 'none'}")
-        return observable, obs[observable]
+        return observable, [(st, _readable(w)) for st, w in obs[observable]]
     if state is None:
-        return "", {}
+        return "", []
     if state not in scheme.states:
         raise ModelError(f"{scheme.origin}: unknown state {state!r}; states are {', '.join(scheme.states)}")
-    return f"p_{state}", {state: 1.0}
+    return f"p_{state}", [(state, ("num", Fraction(1)))]
+
+
+def _readable(label):
+    """A weight label with its numbers as short fractions (0.1, not the
+    binary fraction nearest to it)."""
+    if label[0] == "num":
+        return ("num", Fraction(label[1]).limit_denominator(10**12))
+    if label[0] == "sym":
+        return label
+    return (label[0], *(_readable(a) for a in label[1:]))
 
 
 # ---------------------------------------------------------------- printing the DAG
@@ -229,7 +261,7 @@ def shared_form(scheme: Scheme, *, state=None, observable=None, method: str = "e
     pr = _Printer(g, scheme.symbols, latex)
     # What is shown: every rho (so Z reads as their sum) and the target.
     if weights:
-        shown = [index[s] for s in weights if g.ops[rho[index[s]]] != "const" or g.data[rho[index[s]]] != 0]
+        shown = [index[s] for s, _ in weights if g.ops[rho[index[s]]] != "const" or g.data[rho[index[s]]] != 0]
     else:
         shown = list(range(n))
     roots = [rho[i] for i in range(n)] + [total]
@@ -266,16 +298,11 @@ def shared_form(scheme: Scheme, *, state=None, observable=None, method: str = "e
     lines.append("Z" + eq + " + ".join(t for t in rho_text.values() if t != "0"))
     head = pr.name(target) if target else None
     if weights:
-        terms = []
-        for s, w in weights.items():
-            i = index[s]
-            if rho_text[i] == "0":
-                continue
-            w = Fraction(w).limit_denominator(10**12) if not isinstance(w, Fraction) else w
-            coef = "" if w == 1 else (pr.const(w)[0] + (r" \cdot " if latex else "*"))
-            terms.append(coef + rho_text[i])
-        num = " + ".join(terms) or "0"
-        result = rf"\frac{{{num}}}{{Z}}" if latex else (f"({num})/Z" if len(terms) > 1 else f"{num}/Z")
+        column = {name: j for j, name in enumerate(scheme.symbols)}
+        node = weighted_node(g, weights, rho, index, column)
+        num, prec = pr.expr(node, {**named, **{rho[i]: rho_text[i] for i in range(n)
+                                               if g.ops[rho[i]] not in ("const", "input")}})
+        result = rf"\frac{{{num}}}{{Z}}" if latex else (f"({num})/Z" if prec < 3 else f"{num}/Z")
         lines.append(f"{head}{eq}{result}")
     else:
         for i in shown:
@@ -322,10 +349,10 @@ def coefficient_form(scheme: Scheme, *, collect, state=None, observable=None, se
                             f"(limit {MAX_TERMS:,}); use the shared form")
     fn, _info = build(scheme, method="trees", scale=False)
     rho = fn.group("rho")
-    exprs = ir.to_sympy(fn.graph, rho, scheme.symbols)
-    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    top = weighted_node(fn.graph, weights, rho, scheme.index(), column)
+    *exprs, num = ir.to_sympy(fn.graph, list(rho) + [top], scheme.symbols)
     den = sympy.Add(*exprs)
-    num = sympy.Add(*[sympy.nsimplify(w, rational=True) * exprs[index[s]] for s, w in weights.items()])
     ratio = sympy.cancel(sympy.together(num / den))
     num, den = sympy.fraction(ratio)
     gens = [sympy.Symbol(c, positive=True) for c in collect]

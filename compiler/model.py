@@ -23,6 +23,10 @@ from .errors import ModelError
 from .parse import (Label, check_name, constant_value, label_symbols, label_text, lookalike_clash, parse_label,
                     safe_text)
 
+# Reserved keys inside an observable: the one-way flux of an edge, the net
+# flux of a reversible pair.
+OBSERVABLE_KINDS = ("flux", "net_flux")
+
 
 @dataclass(frozen=True)
 class Symbol:
@@ -39,6 +43,11 @@ class Edge:
     target: str
     rate: str       # the text as written
     label: Label    # the parsed tuple tree
+
+
+def _number_label(value: float) -> Label:
+    from fractions import Fraction
+    return ("num", Fraction(value))
 
 
 def _check_number(value, what: str, where: str, positive: bool = False):
@@ -143,17 +152,86 @@ class Scheme:
         self._add_symbol(self._inputs, "input", name, value, min, max)
 
     def add_observable(self, name: str, weights: dict) -> None:
+        """Declare observable ``name``: a map state → weight (a number or a rate
+        expression such as ``"k_cat"``), or ``{"flux": "A->B"}`` (the one-way
+        flux p(A)·ℓ(A→B)), or ``{"net_flux": "A->B"}`` (p(A)ℓ(A→B) − p(B)ℓ(B→A)).
+        ``flux``/``net_flux`` may also name a list of edges (their sum)."""
         check_name(name, "observable", self.origin)
         where = f"{self.origin}: observable {name!r}"
         if name in self._observables:
             raise ModelError(f"{where}: declared twice")
         if not isinstance(weights, dict) or not weights:
-            raise ModelError(f"{where}: needs a non-empty map of state name to weight")
-        clean = {}
-        for state, w in weights.items():
-            check_name(state, "state", where)
-            clean[state] = _check_number(w, f"weight of state {state!r}", where)
+            raise ModelError(f"{where}: needs a non-empty map of state name to weight, "
+                             "or { flux = \"A->B\" } or { net_flux = \"A->B\" }")
+        kinds = [k for k in OBSERVABLE_KINDS if k in weights]
+        if kinds:
+            if len(weights) != 1:
+                raise ModelError(f"{where}: {kinds[0]!r} stands alone (a reserved key; it cannot be "
+                                 "mixed with state weights or the other flux key)")
+            edges = weights[kinds[0]]
+            edges = [edges] if isinstance(edges, str) else edges
+            if not isinstance(edges, (list, tuple)) or not edges or \
+                    not all(isinstance(e, str) and "->" in e for e in edges):
+                raise ModelError(f"{where}: {kinds[0]} must name an edge as \"A->B\" (or a list of them)")
+            clean = {kinds[0]: weights[kinds[0]] if isinstance(weights[kinds[0]], str) else list(edges)}
+        else:
+            clean = {}
+            for state, w in weights.items():
+                check_name(state, "state", where)
+                if isinstance(w, str):
+                    parse_label(w, where=f"{where}: weight of state {state!r}")
+                    clean[state] = w
+                else:
+                    clean[state] = _check_number(w, f"weight of state {state!r}", where)
         self._observables[name] = clean
+
+    def observable_terms(self) -> dict[str, list[tuple[str, Label]]]:
+        """Every observable reduced to Σ_i p_i·w_i(θ): name → [(state, weight label)].
+
+        A weight label is a number, a rate expression, an edge's label (a
+        flux) or ``("neg", label)`` (the backward half of a net flux; the only
+        subtraction an observable adds above the labels). Unknown states and
+        edges are refused naming them."""
+        edges = self._edges
+        out = {}
+        for name, spec in self._observables.items():
+            where = f"{self.origin}: observable {name!r}"
+            kind = next((k for k in OBSERVABLE_KINDS if k in spec), None)
+            if kind is None:
+                terms = []
+                for state, w in spec.items():
+                    if state not in self._states:
+                        raise ModelError(f"{where} names unknown state {state!r}")
+                    label = parse_label(w, where=f"{where}: weight of state {state!r}") \
+                        if isinstance(w, str) else _number_label(w)
+                    terms.append((state, label))
+                out[name] = terms
+                continue
+            listed = [spec[kind]] if isinstance(spec[kind], str) else spec[kind]
+            terms = []
+            for text in listed:
+                a, b = self._edge_named(text, where)
+                terms.append((a, edges[(a, b)].label))
+                if kind == "net_flux":
+                    if (b, a) not in edges:
+                        raise ModelError(f"{where}: net_flux needs the reverse edge {b}->{a}, which the "
+                                         f"scheme does not have; use {{ flux = \"{a}->{b}\" }}")
+                    terms.append((b, ("neg", edges[(b, a)].label)))
+            out[name] = terms
+        return out
+
+    def _edge_named(self, text: str, where: str) -> tuple[str, str]:
+        """(source, target) of an edge written ``A->B`` (spaces around the arrow allowed)."""
+        pieces = text.split("->")
+        for cut in range(1, len(pieces)):
+            a, b = "->".join(pieces[:cut]).strip(), "->".join(pieces[cut:]).strip()
+            if (a, b) in self._edges:
+                return a, b
+        a, b = (x.strip() for x in text.split("->", 1))
+        missing = [s for s in (a, b) if s not in self._states]
+        if missing:
+            raise ModelError(f"{where}: edge {a}->{b}: unknown state {missing[0]!r}")
+        raise ModelError(f"{where}: the scheme has no edge {a}->{b}")
 
     # ------------------------------------------------------------ reading
     @property
@@ -175,6 +253,11 @@ class Scheme:
             for e in self._edges.values():
                 for s in label_symbols(e.label):
                     names.setdefault(s, None)
+            for spec in self._observables.values():  # rate observables' own symbols
+                for w in spec.values():
+                    if isinstance(w, str) and not any(k in spec for k in OBSERVABLE_KINDS):
+                        for s in label_symbols(parse_label(w)):
+                            names.setdefault(s, None)
             return tuple(Symbol(n, "parameter") for n in names)
         return tuple(self._params.values())
 
@@ -193,7 +276,9 @@ class Scheme:
         raise ModelError(f"{self.origin}: unknown symbol {name!r}")
 
     @property
-    def observables(self) -> dict[str, dict[str, float]]:
+    def observables(self) -> dict[str, dict]:
+        """Observables as declared: name → {state: number or expression text},
+        {"flux": "A->B"} or {"net_flux": "A->B"} (see :meth:`observable_terms`)."""
         return {k: dict(v) for k, v in self._observables.items()}
 
     def index(self) -> dict[str, int]:
@@ -219,10 +304,12 @@ class Scheme:
                 if s not in declared:
                     raise ModelError(f"{self.origin}: edge {e.source}->{e.target}: undeclared symbol {s!r} "
                                      f"in rate {e.rate!r}; declare it under [parameters] or [inputs]")
-        for obs, weights in self._observables.items():
-            for state in weights:
-                if state not in self._states:
-                    raise ModelError(f"{self.origin}: observable {obs!r} names unknown state {state!r}")
+        for obs, terms in self.observable_terms().items():
+            for state, label in terms:
+                for s in label_symbols(label):
+                    if s not in declared:
+                        raise ModelError(f"{self.origin}: observable {obs!r}: weight of state {state!r} uses "
+                                         f"undeclared symbol {s!r}; declare it under [parameters] or [inputs]")
         return self
 
     def canonical(self) -> str:

@@ -266,20 +266,112 @@ def _elimination_cost(n: int, edges, comps, *, budget=None):
 
 
 def _observable_nodes(scheme: Scheme, fn: ir.Function) -> tuple[list[int], list[list[float]]]:
-    g = fn.graph
+    """One IR node per observable, O_k = Σ_i p_i·w_ik(θ), and the constant
+    weights (n_states × n_observables; 0 where a weight is an expression).
+
+    Weights are lowered from the symbols (never from the front end's scaled
+    labels), so the derivative passes see them as ordinary functions of θ.
+    Terms whose weight is ``("neg", ℓ)`` (the backward flux of a net flux)
+    or a negative number are summed apart and subtracted once at the top: O = J+ − J−. That is
+    the only subtraction an observable adds above the labels (the ``p``
+    group stays subtraction-free), and its rounding error is bounded by a
+    few ε·(J+ + J−) in absolute terms — a net flux near zero (near
+    detailed balance) is known to that absolute accuracy, not relatively."""
     index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
     p = fn.group("p")
-    nodes, weights = [], [[0.0] * len(scheme.observables) for _ in scheme.states]
-    for k, (name, w) in enumerate(scheme.observables.items()):
-        terms = []
-        for state, weight in w.items():
-            weights[index[state]][k] = weight
-            if weight == 1:
-                terms.append(p[index[state]])
-            elif weight != 0:
-                terms.append(g.mul(g.const(weight), p[index[state]]))
-        nodes.append(g.add(*terms) if terms else g.const(0))
-    return nodes, weights
+    nodes = [weighted_node(fn.graph, terms, p, index, column) for terms in scheme.observable_terms().values()]
+    return nodes, _constant_weights(scheme)
+
+
+def weighted_node(g: ir.Graph, terms, values: list, index: dict, column: dict) -> int:
+    """The node J+ − J− (or J+ alone) of one observable (see :func:`signed_sums`)."""
+    plus, minus = signed_sums(g, terms, values, index, column)
+    plus = plus if plus is not None else g.const(0)
+    return plus if minus is None else g.sub(plus, minus)
+
+
+def _observable_parts(scheme: Scheme, fn: ir.Function) -> list[tuple]:
+    """(J+, J−) of every observable: the sums of its terms with positive and
+    with negated weights (``("neg", ℓ)`` or a negative number), each
+    subtraction-free above the labels, or None where there are none."""
+    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    p = fn.group("p")
+    return [signed_sums(fn.graph, terms, p, index, column) for terms in scheme.observable_terms().values()]
+
+
+def signed_sums(g: ir.Graph, terms, values: list, index: dict, column: dict) -> tuple:
+    """(Σ w_i·x_i over the positive weights, Σ |w_i|·x_i over the negated
+    ones) of one observable's terms [(state, weight label)], with x_i =
+    ``values[index[state]]`` (the probabilities, or the unnormalised
+    weights ρ for printing); None for an empty sum. Zero weights and
+    states fixed at 0 (transient states) drop out."""
+    sums: dict = {1: [], -1: []}
+    for state, label in terms:
+        sign = -1 if label[0] == "neg" or (label[0] == "num" and label[1] < 0) else 1
+        label = label[1] if label[0] == "neg" else ("num", -label[1]) if sign < 0 else label
+        x = values[index[state]]
+        if label == ("num", 0) or (g.ops[x] == "const" and g.data[x] == 0):
+            continue
+        sums[sign].append(x if label == ("num", 1) else g.mul(ir.lower_label(g, label, column), x))
+    return tuple(g.add(*xs) if len(xs) > 1 else xs[0] if xs else None for xs in (sums[1], sums[-1]))
+
+
+def _signed_groups(scheme: Scheme, fn: ir.Function, kept: ir.Function) -> None:
+    """Groups ``obs_plus``/``obs_minus`` (J+ and J− of every observable) when
+    some observable subtracts: their Jacobians are taken apart and subtracted
+    at the end (:func:`_observable_jacobian`), since the relative adjoints of
+    J+ − J− divide by its value, which is exactly 0 at detailed balance."""
+    parts = _observable_parts(scheme, fn)
+    if any(minus is not None for _, minus in parts):
+        zero = fn.graph.const(0)
+        kept.add_group("obs_plus", [a if a is not None else zero for a, _ in parts])
+        kept.add_group("obs_minus", [b if b is not None else zero for _, b in parts])
+
+
+def _observable_jacobian(fn: ir.Function) -> ir.Function:
+    """Add ``obs_jac`` (log form): directly, or as jac(J+) − jac(J−) when the
+    observables subtract (the helper groups are dropped afterwards)."""
+    from .simplify import differentiate
+
+    if "obs_minus" not in fn.groups:
+        return differentiate(fn, group="obs", log=True)
+    fn = differentiate(fn, group="obs_plus", log=True)
+    fn = differentiate(fn, group="obs_minus", log=True)
+    g = fn.graph
+    jac = [a if g.ops[b] == "const" and g.data[b] == 0 else g.sub(a, b)
+           for a, b in zip(fn.group("obs_plus_jac"), fn.group("obs_minus_jac"))]
+    out = ir.Function(g, fn.n_inputs, [], labels=fn.labels)
+    for name in fn.groups:
+        if name not in ("obs_plus", "obs_minus", "obs_plus_jac", "obs_minus_jac"):
+            out.add_group(name, fn.group(name))
+    out.add_group("obs_jac", jac)
+    return ir.compact(out)
+
+
+def _constant_weights(scheme: Scheme) -> list[list[float]]:
+    """n_states × n_observables matrix of the weights that are numbers (the
+    runtime's fast path); expression weights are carried by
+    :func:`observable_trees` and leave 0 here."""
+    index = scheme.index()
+    terms = scheme.observable_terms()
+    weights = [[0.0] * len(terms) for _ in scheme.states]
+    for k, rows in enumerate(terms.values()):
+        for state, label in rows:
+            if label[0] == "num":
+                weights[index[state]][k] += float(label[1])
+    return weights
+
+
+def observable_trees(scheme: Scheme) -> list:
+    """Every observable term as plain data for the runtime (no compiler needed
+    there): ``[observable index, state index, weight tree]``, the tree in the
+    form of :func:`label_trees`."""
+    index = scheme.index()
+    column = {name: j for j, name in enumerate(scheme.symbols)}
+    return [[k, index[state], _runtime_tree(label, column)]
+            for k, rows in enumerate(scheme.observable_terms().values()) for state, label in rows]
 
 
 def _simplify(fn: ir.Function, report: list | None) -> ir.Function:
@@ -362,9 +454,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                              f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
         kernel, groups = None, {}
         comps = _structure().terminal_components(n, edges)
-        for k, w in enumerate(scheme.observables.values()):
-            for state, weight in w.items():
-                weights[scheme.index()[state]][k] = weight
+        weights = _constant_weights(scheme)
     else:
         t0 = time.perf_counter()
         fn, info = build(scheme, method=chosen.method, guard=True, order=chosen.order)
@@ -376,6 +466,8 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
             if obs_names:
                 nodes, weights = _observable_nodes(scheme, fn)
                 kept.add_group("obs", nodes)
+                if jacobian:
+                    _signed_groups(scheme, fn, kept)
         else:
             kept.add_group("basis", fn.group("basis"))
         t0 = time.perf_counter()
@@ -417,6 +509,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
 def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
     method = info.method
     info.label_trees = label_trees(scheme)
+    info.observable_terms = observable_trees(scheme)
     return CompiledModel(info, kernel, label_kernel,
                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
@@ -437,7 +530,7 @@ def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, along: str 
         # the runtime divides by the symbol for the plain form.
         fn = differentiate(fn, group="p", log=True)
         if "obs" in fn.groups:
-            fn = differentiate(fn, group="obs", log=True)
+            fn = _observable_jacobian(fn)
     if along is not None:
         names = [s.name for s in scheme.inputs]
         if along not in names:
@@ -453,16 +546,16 @@ def label_trees(scheme: Scheme) -> list:
     """Every edge label as plain data for the runtime's multiprecision path:
     ``["num", "p/q"]``, ``["sym", column]``, ``[op, a]`` or ``[op, a, b]``."""
     column = {name: j for j, name in enumerate(scheme.symbols)}
+    return [_runtime_tree(e.label, column) for e in scheme.edges]
 
-    def convert(label):
-        op = label[0]
-        if op == "num":
-            return ["num", str(label[1])]
-        if op == "sym":
-            return ["sym", column[label[1]]]
-        return [op, *(convert(a) for a in label[1:])]
 
-    return [convert(e.label) for e in scheme.edges]
+def _runtime_tree(label, column: dict) -> list:
+    op = label[0]
+    if op == "num":
+        return ["num", str(label[1])]
+    if op == "sym":
+        return ["sym", column[label[1]]]
+    return [op, *(_runtime_tree(a, column) for a in label[1:])]
 
 
 def _label_function(scheme: Scheme) -> ir.Function:

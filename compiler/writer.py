@@ -21,6 +21,15 @@ def _num(x: float) -> str:
     return repr(float(x))
 
 
+def _weight(v) -> str:
+    """An observable's weight: a number, an expression, an edge or a list of edges."""
+    if isinstance(v, str):
+        return _s(v)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_s(x) for x in v) + "]"
+    return _num(v)
+
+
 def _symbol(sym) -> str:
     fields = [f"{k} = {_num(v)}" for k, v in (("value", sym.value), ("min", sym.min), ("max", sym.max))
               if v is not None]
@@ -40,6 +49,6 @@ def model_text(scheme, *, comment: str = "") -> str:
     if scheme.observables:
         lines += ["", "[observables]"]
         for name, weights in scheme.observables.items():
-            inner = ", ".join(f"{_s(k)} = {_num(v)}" for k, v in weights.items())
+            inner = ", ".join(f"{_s(k)} = {_weight(v)}" for k, v in weights.items())
             lines.append(f"{_s(name)} = {{ {inner} }}")
     return "\n".join(lines) + "\n"

@@ -15,7 +15,11 @@ Uncertainties are the usual asymptotic standard errors (e.g. Bates & Watts,
 cov(u) = s² (JᵀJ)⁻¹ with J the Jacobian of the residuals with respect to u
 at the optimum (central differences) and s² = Σ r² / (m − p) the residual
 variance (m residuals, p free parameters); σ(θ) = θ σ(u) by the delta
-method. With sigma columns s² is the reduced chi-square, so the errors are
+method. J is the compiled Jacobian (``jac``/``obs_jac``) when the model was
+compiled with ``jacobian=True`` (also handed to the optimizer), else
+central differences. Observables may be rates (weights that depend on the
+parameters, e.g. an initial velocity k_cat·p(ES)); their gradients include
+the weights' own derivatives. With sigma columns s² is the reduced chi-square, so the errors are
 scaled by the observed scatter either way.
 
 Fits explain themselves: the singular value decomposition of J names the
@@ -219,34 +223,48 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
     X = model.as_array({**values, **placeholders, **fixed_cols})
     X = np.ascontiguousarray(np.broadcast_to(X, (m_rows, X.shape[1])))
     free_idx = [model.symbols.index(p) for p in free]
-    # measured values and weights, flattened over (observable, row)
-    W, Y, S, names = [], [], [], []
+    # measured values, flattened over (column, row); a column is an
+    # observable (weights may be rate expressions) or a state's probability
+    cols, Y, S = [], [], []
     obs_names = tuple(model.observable_names)
     for o, col in obs_cols.items():
-        if o in obs_names:
-            w = model.observable_weights[:, obs_names.index(o)]
-        else:
-            w = np.zeros(len(model.states))
-            w[model.states.index(o)] = 1.0
         sig = sig_cols.get(o, np.ones(m_rows))
         mask = np.isfinite(col)
         bad = mask & ~(np.isfinite(sig) & (sig > 0))
         if bad.any():
             raise EvaluationError(f"column sigma_{o}: row {int(np.flatnonzero(bad)[0]) + 1} "
                                   f"needs a positive standard deviation")
-        W.append((w, mask))
+        cols.append((o in obs_names, obs_names.index(o) if o in obs_names else model.states.index(o), mask))
         Y.append(col[mask])
         S.append(sig[mask])
-        names.append(o)
     Y, S = np.concatenate(Y), np.concatenate(S)
     m_res, p = len(Y), len(free)
+    analytic = _has_jacobian(model, cols)
 
-    def residuals(u):
+    def at(u):
         Xu = X.copy()
         Xu[:, free_idx] = np.exp(u)
+        return Xu
+
+    def residuals(u):
+        Xu = at(u)
         P = model.steady_state(Xu)
-        pred = np.concatenate([(P @ w)[mask] for w, mask in W])
+        O = model.observables_from(Xu, P) if any(is_obs for is_obs, _, _ in cols) else None
+        pred = np.concatenate([(O if is_obs else P)[mask, k] for is_obs, k, mask in cols])
         return (pred - Y) / S
+
+    def jacobian(u):
+        """∂r/∂ln θ of the free parameters from the compiled Jacobians."""
+        Xu = at(u)
+        Jp = model.jacobian(Xu) if any(not is_obs for is_obs, _, _ in cols) else None
+        Jo = model.observable_jacobian(Xu) if any(is_obs for is_obs, _, _ in cols) else None
+        rows = []
+        for is_obs, k, mask in cols:
+            D = (Jo if is_obs else Jp)[:, k, :][:, free_idx]
+            if not model.info.log_jacobian:
+                D = D * Xu[:, free_idx]
+            rows.append(D[mask])
+        return np.concatenate(rows) / S[:, None]
 
     lo = np.log([model.info.bounds[q][0] for q in free])
     hi = np.log([model.info.bounds[q][1] for q in free])
@@ -280,7 +298,8 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
             start = np.array(u0) if k == 0 else lo + rng.random(p) * (hi - lo)
             start = np.clip(start, lo + inner, hi - inner)
             t0 = time.perf_counter()
-            res = least_squares(residuals, start, bounds=(lo, hi), method="trf", x_scale=1.0,
+            res = least_squares(residuals, start, jac=jacobian if analytic else "2-point",
+                                bounds=(lo, hi), method="trf", x_scale=1.0,
                                 max_nfev=max_evaluations, xtol=1e-12, ftol=1e-12, gtol=1e-12)
             if k == 0 and starts > 1:
                 _refuse_time(starts, time.perf_counter() - t0, budget, "the first start's time")
@@ -289,7 +308,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
             bar.update(1)
     u = best.x
     r = residuals(u)
-    J = _central_jacobian(residuals, u)
+    J = jacobian(u) if analytic else _central_jacobian(residuals, u)
     dof = m_res - p
     result = {
         "parameters": dict(zip(free, np.exp(u).tolist())),
@@ -304,6 +323,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         "message": str(best.message),
         "evaluations": int(best.nfev),
         "weighted": bool(sig_cols),
+        "jacobian": "compiled" if analytic else "central differences",
         "uncertainty_method": UNCERTAINTY_METHOD,
         "note": "best-fit parameters of the model; uncertainties are asymptotic (linearized) estimates",
         "correlations": None,
@@ -598,6 +618,13 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
         out["warning"] = (f"profiling found a better fit (cost lower by {-better:.3g}): the reported optimum "
                           "is not the global one; refit with more --starts")
     return out
+
+
+def _has_jacobian(model, cols) -> bool:
+    """Whether the model was compiled with the Jacobians these columns need
+    (``jac`` for state columns, ``obs_jac`` for observables)."""
+    groups = model.info.groups
+    return all(("obs_jac" if is_obs else "jac") in groups for is_obs, _, _ in cols)
 
 
 def _central_jacobian(fun, u, step: float = 1e-6) -> np.ndarray:

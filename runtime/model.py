@@ -53,6 +53,9 @@ class ModelInfo:
     # One label tree per edge for the multiprecision derivative path
     # (runtime.sensitivity): ["num", "p/q"], ["sym", column], [op, a(, b)].
     label_trees: list = field(default_factory=list)
+    # Observables as Σ_i p_i·w_ik(θ): [observable index, state index, weight
+    # tree] (trees as label_trees); evaluated per row on every path.
+    observable_terms: list = field(default_factory=list)
 
 
 class CompiledModel:
@@ -406,25 +409,93 @@ class CompiledModel:
         return B
 
     def observables(self, X, *, threads=None) -> np.ndarray:
-        """Observables (N, n_observables): weighted sums of state probabilities."""
+        """Observables (N, n_observables): Σ_i p_i·w_ik(θ), the weights numbers,
+        rate expressions or edge rates (fluxes), evaluated per row.
+
+        Rows the steady-state guard does not trust (and rows where the
+        kernel's observable is not finite) are recomputed from the guarded
+        steady state with the weights evaluated at that row. A net flux
+        J+ − J− carries an absolute error of a few ε·(J+ + J−)."""
         if not self.info.observable_names:
             raise EvaluationError("the model declares no observables")
         self._require_single()
         arr = self.as_array(X)
         if self.kernel is None or "obs" not in self.info.groups:
-            return self.steady_state(arr, threads=threads) @ self.observable_weights
+            return self.observables_from(arr, self.steady_state(arr, threads=threads))
         a, b = self.info.groups["obs"]
         outputs, bad = self._guarded(arr, threads)
         O = np.array(outputs[:, a:b])
+        bad |= ~np.isfinite(O).all(axis=1)
         if bad.any():
             rows = np.flatnonzero(bad)
-            O[rows] = self._numeric(arr[rows], rows) @ self.observable_weights
+            O[rows] = self.observables_from(arr[rows], self._numeric(arr[rows], rows))
         return O
+
+    def observables_from(self, X, P) -> np.ndarray:
+        """Observables (N, n_observables) of rows ``X`` whose steady state is
+        ``P`` (N, n_states): the weights evaluated per row, then Σ_i p_i·w_ik.
+        A value beyond float64 is refused."""
+        arr = np.asarray(X, dtype=np.float64)
+        P = np.asarray(P, dtype=np.float64)
+        terms = self._observable_terms()
+        O = np.zeros((P.shape[0], len(self.info.observable_names)))
+        with np.errstate(all="ignore"):
+            # term by term, never through BLAS: the same bits in every process
+            # whatever its BLAS threads (sampling on a cluster must match a local run)
+            for k, i, tree in terms:
+                O[:, k] += P[:, i] * _tree_values(tree, arr)
+        bad = ~np.isfinite(O)
+        if bad.any():
+            r, k = np.argwhere(bad)[0]
+            raise EvaluationError(f"row {r}: observable {self.info.observable_names[k]!r} is not a finite "
+                                  "float64 number at these values")
+        return O
+
+    def _observable_terms(self) -> list:
+        """[observable, state, weight tree] of every nonzero weight (from the
+        constant matrix for models compiled without terms)."""
+        if self.info.observable_terms:
+            return self.info.observable_terms
+        W = self._constant_weight_matrix()
+        return [[k, i, ["num", repr(float(W[i, k]))]] for i, k in np.argwhere(W != 0)]
+
+    def _constant_weight_matrix(self) -> np.ndarray:
+        return np.asarray(self.info.observable_weights, dtype=np.float64).reshape(
+            len(self.states), len(self.info.observable_names))
 
     @property
     def observable_weights(self) -> np.ndarray:
-        return np.asarray(self.info.observable_weights, dtype=np.float64).reshape(
-            len(self.states), len(self.info.observable_names))
+        """Weights (n_states × n_observables) of observables whose weights are
+        all numbers; refused for a rate observable (its weights depend on the
+        symbols: use :meth:`observables` or :meth:`observables_from`)."""
+        for k, i, tree in self.info.observable_terms:
+            if tree[0] != "num":
+                raise EvaluationError(f"observable {self.info.observable_names[k]!r} is a rate: its weights "
+                                      "depend on the symbols and are evaluated per row")
+        return self._constant_weight_matrix()
+
+    def _observable_rows(self, row: np.ndarray, D: np.ndarray, cols) -> np.ndarray:
+        """∂O/∂θ (or ∂O/∂log θ) of one row on the safe path, from the safe
+        steady-state derivatives D (n_states × len(cols)):
+        Σ_i w_ik ∂p_i + p_i ∂w_ik, the weight gradients by dual numbers."""
+        import mpmath
+
+        from .sensitivity import _dual
+
+        P = self.steady_state(row)[0]
+        theta = [mpmath.mpf(float(x)) for x in row[0]]
+        out = np.zeros((len(self.info.observable_names), len(cols)))
+        for k, i, tree in self._observable_terms():
+            try:
+                w, grad = _dual(tree, theta, mpmath)
+            except (ValueError, ZeroDivisionError):
+                raise EvaluationError(f"observable {self.info.observable_names[k]!r}: its weight cannot be "
+                                      "evaluated at these values") from None
+            dw = np.array([float(grad[j]) for j in cols])
+            if self.info.log_jacobian:
+                dw = dw * row[0, cols]
+            out[k] += float(w) * D[i] + P[i] * dw
+        return out
 
     def jacobian(self, X, *, threads=None) -> np.ndarray:
         """∂p_i/∂θ_j as (N, n_states, n_symbols) (∂p_i/∂log θ_j if compiled with
@@ -440,7 +511,7 @@ class CompiledModel:
         if "obs_jac" not in self.info.groups:
             raise EvaluationError("compile with jacobian=True (and declare observables) for their gradients")
         self._require_single()
-        return self._derivatives(self.as_array(X), "obs_jac", self.observable_weights, threads)
+        return self._derivatives(self.as_array(X), "obs_jac", self._observable_rows, threads)
 
     def _derivatives(self, arr, group, weights, threads) -> np.ndarray:
         """The compiled log-form derivatives of ``group``, divided by θ for the
@@ -469,7 +540,7 @@ class CompiledModel:
                 cols = list(range(nsym)) if redo[r] else list(np.flatnonzero(zero[r]))
                 D = jacobian_rows(n, self.info.edges, self.info.label_trees, arr[r:r + 1],
                                   log=self.info.log_jacobian, columns=cols, where=self.info.name)[0]
-                J[r][:, cols] = D if weights is None else weights.T @ D
+                J[r][:, cols] = D if weights is None else weights(arr[r:r + 1], D, cols)
         bad = ~np.isfinite(J)
         if bad.any():
             r, i, j = np.argwhere(bad)[0]
@@ -588,3 +659,18 @@ def _check_out(out, shape: tuple, arr: np.ndarray) -> None:
         raise EvaluationError("out is read-only")
     if np.may_share_memory(out, arr):
         raise EvaluationError("out must not share memory with the inputs")
+
+_UNARY = {"neg": np.negative, "exp": np.exp, "log": np.log, "sqrt": np.sqrt}
+_BINARY = {"add": np.add, "sub": np.subtract, "mul": np.multiply, "div": np.divide, "pow": np.power}
+
+
+def _tree_values(tree, arr: np.ndarray) -> np.ndarray:
+    """A weight tree (the form of ModelInfo.label_trees) at every row of ``arr``."""
+    op = tree[0]
+    if op == "num":
+        from fractions import Fraction
+        return np.full(arr.shape[0], float(Fraction(tree[1])))
+    if op == "sym":
+        return arr[:, tree[1]]
+    args = [_tree_values(t, arr) for t in tree[1:]]
+    return (_UNARY if len(args) == 1 else _BINARY)[op](*args)

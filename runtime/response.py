@@ -88,11 +88,12 @@ NOTE = "model predictions of the scheme, not measurements"
 
 # ------------------------------------------------------------------ selection
 
-def _observable_weights(model, observable: str) -> np.ndarray:
-    """Weight vector over states for an observable name or a state name."""
+def _observable_weights(model, observable: str):
+    """Weight vector over states for a state name; None for a declared
+    observable (its weights may depend on the symbols); refuses other names."""
     names = tuple(model.observable_names)
     if observable in names:
-        return np.ascontiguousarray(model.observable_weights[:, names.index(observable)])
+        return None  # weights may be rate expressions, evaluated per row by model.observables
     if observable in model.states:
         w = np.zeros(len(model.states))
         w[model.states.index(observable)] = 1.0

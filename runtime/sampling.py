@@ -134,7 +134,7 @@ def _evaluate(model, X: np.ndarray, task) -> np.ndarray:
     if task is None:
         P = model.steady_state(X)
         if model.observable_names:
-            return np.hstack([P, _weighted(P, model.observable_weights)])
+            return np.hstack([P, model.observables_from(X, P)])
         return P
     from .response import response_summaries
     s = response_summaries(model, X, skip_flat=True, **task)
