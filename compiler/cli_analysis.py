@@ -28,11 +28,11 @@ def _cli():
     return cli
 
 
-def _compile(path, method="auto", backend="python"):
+def _compile(path, method="auto", backend="python", jacobian=False):
     """Load a model file and compile it (module level: picklable for workers)."""
     from .pipeline import compile_scheme
     scheme = _cli().load_model(path)
-    return scheme, compile_scheme(scheme, method=method, backend=backend)
+    return scheme, compile_scheme(scheme, method=method, backend=backend, jacobian=jacobian)
 
 
 def _values(args) -> dict:
@@ -530,7 +530,11 @@ def cmd_fit(args) -> int:
     from treeflux.runtime.analysis import fit, read_table
     values = _values(args)
     data = read_table(args.data)
-    _, model = _compile(args.model, args.method, args.backend)
+    from .errors import ModelError
+    try:  # the compiled Jacobian where a straight-line method exists; else central differences
+        _, model = _compile(args.model, args.method, args.backend, jacobian=True)
+    except ModelError:
+        _, model = _compile(args.model, args.method, args.backend)
     r = fit(model, data, values=values, starts=args.starts, seed=args.seed, profile=args.profile)
     if args.json:
         _emit(r)
