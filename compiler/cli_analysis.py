@@ -668,7 +668,7 @@ def _sizes(args) -> tuple[int, int, int]:
 
 def _check_memory(what: str, need: float) -> None:
     from .errors import TooLargeError
-    from .pipeline import available_memory, format_bytes
+    from treeflux.runtime.resources import available_memory, format_bytes
     avail = available_memory()
     if avail is not None and need > 0.8 * avail:
         raise TooLargeError(f"{what} needs about {format_bytes(need)} of memory; "

@@ -12,13 +12,13 @@ from __future__ import annotations
 import hashlib
 import importlib
 import json
-import os
 import pickle
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from treeflux.runtime.model import CompiledModel, ModelInfo
+from treeflux.runtime.resources import available_memory, format_bytes
 
 from . import ir
 from .backends.naming import Interface, stem
@@ -74,29 +74,6 @@ class Plan:
 def _structure():
     from . import structure
     return structure
-
-
-def available_memory() -> int | None:
-    """Bytes of memory available to a new allocation (MemAvailable of
-    /proc/meminfo, else free pages × page size), or None when unknown."""
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except (OSError, ValueError, IndexError):
-        pass
-    try:
-        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (ValueError, OSError, AttributeError):
-        return None
-
-
-def format_bytes(b: float) -> str:
-    for unit, size in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
-        if b >= size:
-            return f"{b / size:.3g} {unit}"
-    return f"{int(b)} bytes"
 
 
 def _tree_factors(n: int, edges, comps):

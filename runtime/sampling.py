@@ -39,6 +39,7 @@ import numpy as np
 
 from . import kernel as _kernel
 from .errors import EvaluationError, TreefluxError
+from .resources import available_memory
 from .progress import progress
 
 __all__ = ["sample", "sample_ranges", "summarize", "write_table", "write_csv", "block_rows",
@@ -211,21 +212,6 @@ def block_rows(model, task, n_columns: int) -> int:
 
 
 # ------------------------------------------------------------------ guards
-
-def available_memory() -> int | None:
-    """Bytes of memory available to new work (Linux MemAvailable), or None."""
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except (OSError, ValueError, IndexError):
-        pass
-    try:
-        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (ValueError, OSError, AttributeError):
-        return None
-
 
 def _mib(b: float) -> str:
     return f"{b / 2 ** 20:,.0f} MiB"

@@ -22,22 +22,9 @@ from treeflux.compiler import Scheme, compile_scheme
 from treeflux.runtime.errors import EvaluationError
 from treeflux.runtime.sensitivity import jacobian_rows
 
-from .schemes import independent_sites, random_strong_graph, rate_scheme
+from .schemes import exact_solve, independent_sites, random_strong_graph, rate_scheme
 
 TINY = 2.2250738585072014e-308
-
-
-def _solve(A, b):
-    n = len(A)
-    M = [row[:] + [x] for row, x in zip(A, b)]
-    for c in range(n):
-        piv = next(r for r in range(c, n) if M[r][c] != 0)
-        M[c], M[piv] = M[piv], M[c]
-        for r in range(n):
-            if r != c and M[r][c] != 0:
-                f = M[r][c] / M[c][c]
-                M[r] = [x - f * y for x, y in zip(M[r], M[c])]
-    return [M[r][n] / M[r][r] for r in range(n)]
 
 
 def exact_jacobian(n, edges, rates):
@@ -48,14 +35,14 @@ def exact_jacobian(n, edges, rates):
         A[j][i] += k
         A[i][i] -= k
     A[0] = [Fraction(1)] * n
-    p = _solve(A, [Fraction(1)] + [Fraction(0)] * (n - 1))
+    p = exact_solve(A, [Fraction(1)] + [Fraction(0)] * (n - 1))
     J = [[None] * len(edges) for _ in range(n)]
     for e, (i, j) in enumerate(edges):
         rhs = [Fraction(0)] * n
         rhs[j] -= p[i]
         rhs[i] += p[i]
         rhs[0] = Fraction(0)
-        col = _solve(A, rhs)
+        col = exact_solve(A, rhs)
         for s in range(n):
             J[s][e] = col[s]
     return p, J

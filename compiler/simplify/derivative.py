@@ -141,28 +141,29 @@ def _partials(g: Graph, v: int):
 
 
 def _log_partials(g: Graph, v: int):
-    """[(k, sign, factor node or None)] of ∂log v/∂log a_k for every operand slot k."""
+    """[(k, sign, mult, ())] of ∂log v/∂log a_k for every operand slot k (the
+    format of :func:`_partials`; ``mult`` holds at most one factor)."""
     op, args = g.ops[v], g.args[v]
     if op == "add":
-        return [(k, 1, g.div(a, v)) for k, a in enumerate(args)]
+        return [(k, 1, (g.div(a, v),), ()) for k, a in enumerate(args)]
     if op == "sub":
-        return [(0, 1, g.div(args[0], v)), (1, -1, g.div(args[1], v))]
+        return [(0, 1, (g.div(args[0], v),), ()), (1, -1, (g.div(args[1], v),), ())]
     if op in ("neg", "mul"):
-        return [(k, 1, None) for k in range(len(args))]
+        return [(k, 1, (), ()) for k in range(len(args))]
     if op == "div":
-        return [(0, 1, None), (1, -1, None)]
+        return [(0, 1, (), ()), (1, -1, (), ())]
     if op == "exp":
-        return [(0, 1, args[0])]
+        return [(0, 1, (args[0],), ())]
     if op == "log":
-        return [(0, 1, g.div(g.const(1), v))]
+        return [(0, 1, (g.div(g.const(1), v),), ())]
     if op == "sqrt":
-        return [(0, 1, g.const(Fraction(1, 2)))]
+        return [(0, 1, (g.const(Fraction(1, 2)),), ())]
     if op == "pow":
         a, b = args
         if g.ops[b] == "const":
             c = g.data[b]
-            return [] if c == 0 else [(0, 1 if c > 0 else -1, g.const(abs(c)))]
-        return [(0, 1, b), (1, 1, g.mul(b, g.log(a)))]
+            return [] if c == 0 else [(0, 1 if c > 0 else -1, (g.const(abs(c)),), ())]
+        return [(0, 1, (b,), ()), (1, 1, (g.mul(b, g.log(a)),), ())]
     return []  # const, input, max (a constant: see the module docstring)
 
 
@@ -203,11 +204,13 @@ def _forward(g: Graph, roots, j: int, seed, merge: bool):
     return [tan.get(r, (None, None)) for r in roots]
 
 
-def _reverse(g: Graph, root: int, n_inputs: int, merge: bool):
-    """Adjoint parts (P, N) of every input for the output ``root``."""
+def _reverse(g: Graph, root: int, n_inputs: int, merge: bool, relative: bool = False):
+    """Adjoint parts (P, N) of every input for the output ``root``; with
+    ``relative``, relative adjoints r_v = v ∂root/∂v (seeded with root itself),
+    so the result at input j is x_j ∂root/∂x_j."""
     e = _Emit(g)
-    one = g.const(1)
-    acc: dict[int, tuple[list, list]] = {root: ([one], [])}
+    partials = _log_partials if relative else _partials
+    acc: dict[int, tuple[list, list]] = {root: ([root if relative else g.const(1)], [])}
     grad = [(None, None)] * n_inputs
     for v in reversed(live(g, [root])):
         lists = acc.pop(v, None)
@@ -220,37 +223,8 @@ def _reverse(g: Graph, root: int, n_inputs: int, merge: bool):
             grad[g.data[v]] = (p, n)
             continue
         args = g.args[v]
-        for k, sign, mult, divs in _partials(g, v):
+        for k, sign, mult, divs in partials(g, v):
             cp, cn = e.scale(p, mult, divs), e.scale(n, mult, divs)
-            if sign < 0:
-                cp, cn = cn, cp
-            slot = acc.setdefault(args[k], ([], []))
-            if cp is not None:
-                slot[0].append(cp)
-            if cn is not None:
-                slot[1].append(cn)
-    return grad
-
-
-def _reverse_log(g: Graph, root: int, n_inputs: int, merge: bool):
-    """Relative adjoint parts (P, N) of every input for ``root``: x_j ∂root/∂x_j."""
-    e = _Emit(g)
-    acc: dict[int, tuple[list, list]] = {root: ([root], [])}
-    grad = [(None, None)] * n_inputs
-    for v in reversed(live(g, [root])):
-        lists = acc.pop(v, None)
-        if lists is None:
-            continue
-        p, n = _settle(e, lists[0], lists[1], merge)
-        if p is None and n is None:
-            continue
-        if g.ops[v] == "input":
-            grad[g.data[v]] = (p, n)
-            continue
-        args = g.args[v]
-        for k, sign, factor in _log_partials(g, v):
-            mult = () if factor is None else (factor,)
-            cp, cn = e.scale(p, mult, ()), e.scale(n, mult, ())
             if sign < 0:
                 cp, cn = cn, cp
             slot = acc.setdefault(args[k], ([], []))
@@ -276,7 +250,7 @@ def _jacobian_nodes(g: Graph, outs, n_inputs, wrt, log, mode, merge):
                 rows[r][c] = e.combine(p, n)
     elif mode == "relative":
         for r, out in enumerate(outs):
-            grad = _reverse_log(g, out, n_inputs, merge)
+            grad = _reverse(g, out, n_inputs, merge, relative=True)
             for c, j in enumerate(wrt):
                 rows[r][c] = e.combine(*grad[j])
     else:
