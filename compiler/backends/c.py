@@ -253,13 +253,30 @@ _PRELUDE = """\
 #include <math.h>
 #include "{name}.h"
 
-#if defined(__GNUC__)
+#define TF_LANES 8
+
+/* A row holds one value for each of the TF_LANES parameter sets of a block.
+   With GNU C (gcc, clang) it is a vector of doubles and a body row is one
+   vector statement: no loops for the optimiser to analyse, so big bodies
+   compile in seconds. Elsewhere (or with -DTF_PORTABLE) it is an array and
+   every row is a loop over the lanes. Same operations in the same order,
+   correctly rounded either way: the same bits. */
+#if defined(__GNUC__) && !defined(TF_PORTABLE)
 #define TF_NOINLINE __attribute__((noinline))
+typedef double tf_row __attribute__((vector_size(TF_LANES * sizeof(double))));
+#define TF_ROW(...) do {{ __VA_ARGS__; }} while (0)
+#define TF_V(r) (r)
+#define TF_T tf_row
 #else
 #define TF_NOINLINE
+typedef double tf_row[TF_LANES];
+#define TF_ROW(...) for (b = 0; b < TF_LANES; b++) {{ __VA_ARGS__; }}
+#define TF_V(r) (r)[b]
+#define TF_T double
 #endif
-
-#define TF_LANES 8
+/* One lane of a row, in either form (lane b), and a loop over the lanes. */
+#define TF_L(r) (r)[b]
+#define TF_LANEWISE(...) for (b = 0; b < TF_LANES; b++) {{ __VA_ARGS__; }}
 #define TF_NI {n_in_dim}
 #define TF_NO {n_out}
 #define TF_NR {n_res}
@@ -289,8 +306,8 @@ static double tf_powi(double a, int m)
 _DRIVER = """\
 int {name}_eval_range(const double *x, double *out, long start, long stop)
 {{
-    double in[TF_NI][TF_LANES];
-    double res[TF_NR][TF_LANES];
+    tf_row in[TF_NI];
+    tf_row res[TF_NR];
     long r0;
     for (r0 = start; r0 < stop; r0 += TF_LANES) {{
         int n = stop - r0 < TF_LANES ? (int)(stop - r0) : TF_LANES;
@@ -302,7 +319,7 @@ int {name}_eval_range(const double *x, double *out, long start, long stop)
         for (b = 0; b < n && bad == n; b++)
             for (j = 0; j < {n_in}; j++)
                 if (!isfinite(in[j][b])) {{ bad = b; break; }}
-        tf_block((const double (*)[TF_LANES])in, res);
+        tf_block((const tf_row *)in, res);
 {validate}        for (b = 0; b < bad; b++) {{
             double *row = out + (r0 + b) * (long)TF_NO;
             for (k = 0; k < TF_NO; k++) row[k] = res[k][b];
@@ -341,7 +358,7 @@ _RETURNS_CHECKED = """\
 """
 
 _VALIDATE = """\
-static int tf_valid(const double (*res)[TF_LANES], int b)
+static int tf_valid(const tf_row *res, int b)
 {{
     int k;
     double s;
@@ -365,18 +382,32 @@ _VALIDATE_BLOCK = """\
 """
 
 
-def _lane_loop(target: str, rhs: str) -> str:
-    return f"    for (b = 0; b < TF_LANES; b++) {target}[b] = {rhs};\n"
+#: IR ops that are one arithmetic expression over whole rows (vector
+#: statements in GNU C); the others (libm calls, helpers) run lane by lane.
+ROW_OPS = frozenset({"add", "mul", "div", "sub", "neg"})
 
 
-def _row_loop(fn: Function, i: int, ref, target: str) -> str:
-    """The lane loop of IR row ``i``; a long row accumulates in a local ``t``."""
-    parts = expression_parts(fn, i, ref, acc="t", max2="tf_max2", powi="tf_powi")
+def _row_statement(fn: Function, i: int, ref_row, ref_lane, target: int) -> str:
+    """The statement of IR row ``i`` writing workspace slot ``target``.
+
+    Sums, products, quotients and negations are whole-row expressions
+    (``TF_ROW``, operands ``TF_V(...)``); everything else runs lane by lane
+    (``TF_LANEWISE``, operands ``TF_L(...)``), as does a row of constants
+    only (a scalar cannot be assigned to a vector). A long row accumulates in a
+    local ``t`` (a row, or a lane)."""
+    g = fn.graph
+    row = g.ops[i] in ROW_OPS and any(g.ops[a] != "const" for a in g.args[i])
+    ref = ref_row if row else ref_lane
+    wrap, acc, kind = ("TF_ROW", "t", "tf_row") if row else ("TF_LANEWISE", "t", "double")
+    dest = f"TF_V(w[{target}])" if row else f"TF_L(w[{target}])"
+    parts = expression_parts(fn, i, ref, acc=acc, max2="tf_max2", powi="tf_powi")
     if len(parts) == 1:
-        return _lane_loop(target, parts[0])
-    lines = [f"        double t = {parts[0]};\n", *(f"        t = {p};\n" for p in parts[1:])]
-    return ("    for (b = 0; b < TF_LANES; b++) {\n" + "".join(lines)
-            + f"        {target}[b] = t;\n    }}\n")
+        return f"    {wrap}({dest} = {parts[0]});\n"
+    if row:  # portable form: t is one lane; GNU form: t is a row
+        kind = "TF_T"
+    body = "".join([f"        {kind} t = {parts[0]};\n", *(f"        t = {p};\n" for p in parts[1:]),
+                    f"        {dest} = t;\n"])
+    return f"    {wrap}(\n{body}    );\n"
 
 
 def block_layout(fn: Function, *, input_ref, slot_ref):
@@ -401,25 +432,44 @@ def block_layout(fn: Function, *, input_ref, slot_ref):
 
 
 def _body(fn: Function) -> str:
-    """The block function(s): inputs ``in[j][b]``, workspace ``w``, results ``res``."""
-    slot, n_slots, ref, parts = block_layout(fn, input_ref=lambda j: f"in[{j}][b]",
-                                             slot_ref=lambda k: f"w[{k}][b]")
+    """The block function(s): input rows ``in[j]``, workspace ``w``, results ``res``.
+
+    Both the IR rows and the copies of the outputs into ``res`` go into
+    non-inlined parts of at most :data:`CHUNK_ROWS` statements that share
+    the workspace: gcc's alias walk and SLP vectoriser are quadratic in the
+    memory accesses of one function (one function of a thousand output
+    copies cost 24 s and 1.3 GB on a 400-state chain)."""
+    slot, n_slots, ref_row, parts = block_layout(fn, input_ref=lambda j: f"TF_V(in[{j}])",
+                                                 slot_ref=lambda k: f"TF_V(w[{k}])")
+    _, _, ref_lane, _ = block_layout(fn, input_ref=lambda j: f"TF_L(in[{j}])",
+                                     slot_ref=lambda k: f"TF_L(w[{k}])")
+    g = fn.graph
     parts = parts or [[]]
     out = []
-    sig = "const double (*restrict in)[TF_LANES], double (*restrict w)[TF_LANES]"
+    sig = "const tf_row *restrict in, tf_row *restrict w"
     for p, chunk in enumerate(parts):
         out.append(f"static TF_NOINLINE void tf_part{p}({sig})\n{{\n    int b;\n")
         out.append("    (void)in; (void)w; (void)b;\n")
-        for i in chunk:
-            out.append(_row_loop(fn, i, ref, f"w[{slot[i]}]"))
+        out.extend(_row_statement(fn, i, ref_row, ref_lane, slot[i]) for i in chunk)
         out.append("}\n\n")
-    out.append("static void tf_block(const double (*restrict in)[TF_LANES], "
-               "double (*restrict res)[TF_LANES])\n{\n")
-    out.append("    double w[TF_NW][TF_LANES];\n    int b;\n    (void)b;\n")
+    stores = list(enumerate(fn.outputs))
+    store_parts = [stores[k:k + CHUNK_ROWS] for k in range(0, len(stores), CHUNK_ROWS)]
+    sig = "const tf_row *restrict in, const tf_row *restrict w, tf_row *restrict res"
+    for p, chunk in enumerate(store_parts):
+        out.append(f"static TF_NOINLINE void tf_store{p}({sig})\n{{\n    int b;\n")
+        out.append("    (void)in; (void)w; (void)b;\n")
+        for k, o in chunk:
+            if g.ops[o] == "const":  # a scalar: lane by lane
+                out.append(f"    TF_LANEWISE(TF_L(res[{k}]) = {ref_lane(o)});\n")
+            else:
+                out.append(f"    TF_ROW(TF_V(res[{k}]) = {ref_row(o)});\n")
+        out.append("}\n\n")
+    out.append("static void tf_block(const tf_row *restrict in, tf_row *restrict res)\n{\n")
+    out.append("    tf_row w[TF_NW];\n")
     for p in range(len(parts)):
         out.append(f"    tf_part{p}(in, w);\n")
-    for k, o in enumerate(fn.outputs):
-        out.append(_lane_loop(f"res[{k}]", ref(o)))
+    for p in range(len(store_parts)):
+        out.append(f"    tf_store{p}(in, (const tf_row *)w, res);\n")
     out.append("}\n\n")
     return "".join(out), n_slots
 
@@ -457,7 +507,7 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     if interface is not None:
         names_h, names_c = _name_tables(interface, name)
         fields["validate"] = ("        for (b = 0; b < bad; b++)\n"
-                              "            if (!tf_valid((const double (*)[TF_LANES])res, b)) "
+                              "            if (!tf_valid((const tf_row *)res, b)) "
                               "{ bad = b; break; }\n")
         blocks = "".join(_VALIDATE_BLOCK.format(a=a, b=b, tol=literal(probability_tolerance(b - a)))
                          for a, b in probability_blocks(interface))
