@@ -253,6 +253,16 @@ _PRELUDE = """\
 #include <math.h>
 #include "{name}.h"
 
+{rows}#define TF_NI {n_in_dim}
+#define TF_NO {n_out}
+#define TF_NR {n_res}
+#define TF_NW {n_slots}
+
+const int {name}_n_inputs = {n_in};
+const int {name}_n_outputs = {n_out};
+"""
+
+_ROWS = """\
 #define TF_LANES 8
 
 /* A row holds one value for each of the TF_LANES parameter sets of a block.
@@ -264,26 +274,19 @@ _PRELUDE = """\
 #if defined(__GNUC__) && !defined(TF_PORTABLE)
 #define TF_NOINLINE __attribute__((noinline))
 typedef double tf_row __attribute__((vector_size(TF_LANES * sizeof(double))));
-#define TF_ROW(...) do {{ __VA_ARGS__; }} while (0)
+#define TF_ROW(...) do { __VA_ARGS__; } while (0)
 #define TF_V(r) (r)
 #define TF_T tf_row
 #else
 #define TF_NOINLINE
 typedef double tf_row[TF_LANES];
-#define TF_ROW(...) for (b = 0; b < TF_LANES; b++) {{ __VA_ARGS__; }}
+#define TF_ROW(...) for (b = 0; b < TF_LANES; b++) { __VA_ARGS__; }
 #define TF_V(r) (r)[b]
 #define TF_T double
 #endif
 /* One lane of a row, in either form (lane b), and a loop over the lanes. */
 #define TF_L(r) (r)[b]
-#define TF_LANEWISE(...) for (b = 0; b < TF_LANES; b++) {{ __VA_ARGS__; }}
-#define TF_NI {n_in_dim}
-#define TF_NO {n_out}
-#define TF_NR {n_res}
-#define TF_NW {n_slots}
-
-const int {name}_n_inputs = {n_in};
-const int {name}_n_outputs = {n_out};
+#define TF_LANEWISE(...) for (b = 0; b < TF_LANES; b++) { __VA_ARGS__; }
 """
 
 #: Helpers, each emitted only when the body calls it.
@@ -474,6 +477,17 @@ def _body(fn: Function) -> str:
     return "".join(out), n_slots
 
 
+def block_source(fn: Function) -> tuple[str, int]:
+    """The C text that evaluates ``fn`` on one block of lanes, shared by the
+    C and Cython back ends: the row type and its macros, the helpers the body
+    calls, the parts, and ``tf_block(in, res)`` (input rows in, output rows
+    res). Needs ``TF_NI``, ``TF_NR`` and ``TF_NW`` defined before it (the
+    slot count is returned) and ``<math.h>``."""
+    body, n_slots = _body(fn)
+    helpers = "".join("\n" + text for h, text in _HELPERS.items() if h + "(" in body)
+    return _ROWS + helpers + "\n" + body, n_slots
+
+
 def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
     """C99 source and header for ``fn``.
 
@@ -501,7 +515,7 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
         raise ValueError("a function with no outputs has nothing to emit")
     body, n_slots = _body(fn)
     fields = dict(name=name, n_in=n_in, n_in_dim=max(1, n_in), n_out=n_out, n_res=n_res,
-                  n_slots=max(1, n_slots), validate="")
+                  n_slots=max(1, n_slots), validate="", rows=_ROWS)
     helpers = "".join("\n" + text for h, text in _HELPERS.items() if h + "(" in body)
     names_h = names_c = ""
     if interface is not None:

@@ -10,7 +10,7 @@ range(8)`` over a typed ``int b`` on a raw pointer, which Cython writes as a
 plain C ``for`` with a fixed trip count and gcc ``-O3 -march=native``
 vectorises across the lanes. A single base pointer means the compiler sees
 every access as a constant offset from it, so no aliasing question arises.
-The body is split into functions of :data:`.c.CHUNK_ROWS` rows
+The body is the C back end's block text (:func:`.c.block_source`: rows as GNU C vector statements in parts of :data:`.c.CHUNK_ROWS`), embedded verbatim; earlier text: split into functions of rows
 (``-fno-inline-functions-called-once`` keeps them apart: gcc's alias walk is
 quadratic within one function). The last, partial block is padded with a
 copy of its last row and only its real rows are written back.
@@ -53,7 +53,7 @@ from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
-from .c import LANES, block_layout, c_identifier, expression_parts
+from .c import LANES, block_source, c_identifier
 from .naming import (Interface, probability_blocks, probability_tolerance, py_model_api, py_names)
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
@@ -76,8 +76,10 @@ _PYX = """\
 #   written. With threads > 1 the blocks of {lanes} rows are shared out by OpenMP (prange,
 #   static schedule) when the module was built with it.
 #
-# Workspace of one thread: w[(j)*{lanes} + b] is input j of lane b, then
-# w[({n_in} + s)*{lanes} + b] is slot s ({n_slots} slots).
+# Workspace of one thread: w[j*{lanes} + b] is input j of lane b, then
+# w[({n_in} + k)*{lanes} + b] is result k of lane b (outputs, then rates).
+# The body is the C back end's (treeflux.compiler.backends.c.block_source),
+# verbatim: rows as vector statements over the lanes, in parts.
 from cython.parallel cimport prange
 from libc.math cimport exp, log, sqrt, pow{math_extra}
 from libc.stdint cimport uintptr_t
@@ -87,22 +89,19 @@ N_INPUTS = {n_in}
 N_OUTPUTS = {n_out}
 {names}
 
-cdef inline double _max2(double a, double b) noexcept nogil:
-    return a if a > b else b
+cdef extern from *:
+    '''
+#define TF_NI {n_in_dim}
+#define TF_NR {n_res}
+#define TF_NW {n_slots_dim}
+{block}
+static void tf_block_flat(const double *in, double *res)
+{{
+    tf_block((const tf_row *)in, (tf_row *)res);
+}}
+'''
+    void tf_block_flat(const double *inp, double *res) noexcept nogil
 
-
-cdef inline double _powi(double a, int m) noexcept nogil:
-    cdef double r = 1.0
-    while m:
-        if m & 1:
-            r *= a
-        a *= a
-        m >>= 1
-    return r
-
-{parts}
-cdef void _block(double *w) noexcept nogil:
-{calls}
 
 {valid_fn}cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
                       Py_ssize_t stop) noexcept nogil:
@@ -134,7 +133,7 @@ cdef void _block(double *w) noexcept nogil:
             if nan_lane[b] != nan_lane[b]:
                 bad = b
                 break
-        _block(w)
+        tf_block_flat(w, w + {res_at})
 {validate}        for b in range(bad):
             yr = y + (r0 + b) * {n_out}
 {stores}        if bad < n:
@@ -268,30 +267,19 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     n_in, n_out = fn.n_inputs, len(fn.outputs) - (interface.checks if interface else 0)
     if n_out <= 0:
         raise ValueError("a function with no outputs has nothing to emit")
-    slot, n_slots, ref, chunks = block_layout(
-        fn, input_ref=lambda j: f"w[{j * LANES} + b]",
-        slot_ref=lambda k: f"w[{(n_in + k) * LANES} + b]")
-    parts = []
-    for p, chunk in enumerate(chunks):
-        lines = [f"\ncdef void _part{p}(double *w) noexcept nogil:\n    cdef int b\n"]
-        for i in chunk:
-            target = f"w[{(n_in + slot[i]) * LANES} + b]"
-            rhs = expression_parts(fn, i, ref, acc="t", max2="_max2", powi="_powi")
-            if len(rhs) == 1:
-                lines.append(f"    for b in range({LANES}): {target} = {rhs[0]}\n")
-                continue
-            if "    cdef double t\n" not in lines:
-                lines.insert(1, "    cdef double t\n")
-            lines.append(f"    for b in range({LANES}):\n        t = {rhs[0]}\n"
-                         + "".join(f"        t = {r}\n" for r in rhs[1:])
-                         + f"        {target} = t\n")
-        parts.append("".join(lines))
-    calls = "".join(f"    _part{p}(w)\n" for p in range(len(chunks))) or "    pass\n"
-    stores = "".join(f"            yr[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs[:n_out]))
+    block, n_slots = block_source(fn)
+    n_res = len(fn.outputs)
+    result = {o: k for k, o in enumerate(fn.outputs)}
+
+    def ref(node: int) -> str:  # an output's lane b, in the result rows
+        return f"w[{(n_in + result[node]) * LANES} + b]"
+
+    stores = "".join(f"            yr[{k}] = w[{(n_in + k) * LANES} + b]\n" for k in range(n_out))
     checked = interface is not None
-    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, n_slots=n_slots, lanes=LANES,
-                       lanes_less=LANES - 1, n_words=max(1, n_in + n_slots) * LANES,
-                       parts="".join(parts), calls=calls, stores=stores,
+    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),
+                       n_res=n_res, n_slots_dim=max(1, n_slots), block=block,
+                       res_at=n_in * LANES, lanes_less=LANES - 1,
+                       n_words=(n_in + n_res) * LANES, stores=stores,
                        names=_names(interface),
                        refused=_REFUSED_CHECKED if checked else _REFUSED_INPUTS,
                        math_extra=", fabs, isfinite" if checked else "",
