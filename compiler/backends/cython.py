@@ -53,7 +53,7 @@ from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
-from .c import LANES, block_source, c_identifier
+from .c import LANES, block_source, c_identifier, flags_for
 from .naming import (Interface, probability_blocks, probability_tolerance, py_model_api, py_names)
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
@@ -62,6 +62,12 @@ from .naming import (Interface, probability_blocks, probability_tolerance, py_mo
 #: functions (each is called once, from ``_block``).
 COMPILE_ARGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=off",
                 "-fno-inline-functions-called-once")
+
+
+def compile_args(fn: Function | None) -> tuple[str, ...]:
+    """:data:`COMPILE_ARGS` at the optimisation level the C back end picks
+    for ``fn`` (:func:`.c.flags_for`: ``-O1`` for big bodies)."""
+    return (flags_for(fn)[0], *COMPILE_ARGS[1:])
 
 _PYX = """\
 # cython: language_level=3, boundscheck=False, wraparound=False
@@ -206,7 +212,7 @@ setup(name="{name}", ext_modules=cythonize([ext], language_level=3, quiet=True))
 def embed_example(fn: Function, name: str, interface: Interface | None = None) -> dict[str, str]:
     """``setup.py``: the build recipe of the emitted ``.pyx`` (see its text)."""
     name = c_identifier(name)
-    return {"setup.py": _SETUP.format(name=name, flags=list(COMPILE_ARGS))}
+    return {"setup.py": _SETUP.format(name=name, flags=list(compile_args(fn)))}
 
 
 def _names(iface: Interface | None) -> str:
@@ -233,22 +239,24 @@ _VALIDATE = """\
 """
 
 
-def _valid_function(fn: Function, iface: Interface, ref) -> str:
+def _valid_function(n_in: int, n_out: int, n_res: int, iface: Interface) -> str:
     """``_valid(w, b)``: 1 when lane b's rates are positive and finite and its
-    results finite probability vectors (the trailing ``iface.checks`` outputs
-    of ``fn`` are the rates)."""
-    n_out = len(fn.outputs) - iface.checks
-    lines = ["cdef int _valid(double *w, int b) noexcept nogil:", "    cdef double s, v"]
-    for o in fn.outputs[n_out:]:
-        lines += [f"    v = {ref(o)}", "    if not (v > 0.0 and isfinite(v)):", "        return 0"]
-    for o in fn.outputs[:n_out]:
-        lines += [f"    v = {ref(o)}", "    if not isfinite(v):", "        return 0"]
+    results finite probability vectors (results ``n_out..n_res-1`` are the
+    rates). Loops over the result rows, not one statement per output: a
+    function of a thousand statements costs gcc seconds."""
+    def lane(k: str) -> str:
+        return f"w[({n_in} + {k}) * {LANES} + b]"
+
+    lines = ["cdef int _valid(double *w, int b) noexcept nogil:", "    cdef double s, v",
+             "    cdef int k",
+             f"    for k in range({n_out}, {n_res}):", f"        v = {lane('k')}",
+             "        if not (v > 0.0 and isfinite(v)):", "            return 0",
+             f"    for k in range({n_out}):", f"        v = {lane('k')}",
+             "        if not isfinite(v):", "            return 0"]
     for a, b in probability_blocks(iface):
-        lines.append("    s = 0.0")
-        for o in fn.outputs[a:b]:
-            lines += [f"    v = {ref(o)}", "    if not (v >= 0.0 and v <= 1.0):",
-                      "        return 0", "    s += v"]
-        lines += [f"    if fabs(s - 1.0) > {probability_tolerance(b - a)!r}:", "        return 0"]
+        lines += ["    s = 0.0", f"    for k in range({a}, {b}):", f"        v = {lane('k')}",
+                  "        if not (v >= 0.0 and v <= 1.0):", "            return 0", "        s += v",
+                  f"    if fabs(s - 1.0) > {probability_tolerance(b - a)!r}:", "        return 0"]
     lines += ["    return 1", "", "", ""]
     return "\n".join(lines)
 
@@ -269,12 +277,8 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
         raise ValueError("a function with no outputs has nothing to emit")
     block, n_slots = block_source(fn)
     n_res = len(fn.outputs)
-    result = {o: k for k, o in enumerate(fn.outputs)}
-
-    def ref(node: int) -> str:  # an output's lane b, in the result rows
-        return f"w[{(n_in + result[node]) * LANES} + b]"
-
-    stores = "".join(f"            yr[{k}] = w[{(n_in + k) * LANES} + b]\n" for k in range(n_out))
+    stores = (f"            for j in range({n_out}):\n"
+              f"                yr[j] = w[({n_in} + j) * {LANES} + b]\n")
     checked = interface is not None
     text = _PYX.format(name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),
                        n_res=n_res, n_slots_dim=max(1, n_slots), block=block,
@@ -283,7 +287,7 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
                        names=_names(interface),
                        refused=_REFUSED_CHECKED if checked else _REFUSED_INPUTS,
                        math_extra=", fabs, isfinite" if checked else "",
-                       valid_fn=_valid_function(fn, interface, ref) if checked else "",
+                       valid_fn=_valid_function(n_in, n_out, n_res, interface) if checked else "",
                        validate=_VALIDATE if checked else "")
     digest = hashlib.sha256(text.encode()).hexdigest()
     text += f'\nVERSION = "sha256:{digest}"\n'
@@ -351,13 +355,13 @@ shutil.rmtree(os.path.join(work, "build"), ignore_errors=True)
 """
 
 
-def _module_name(pyx: str, openmp: bool) -> str:
-    h = hashlib.sha256(f"{openmp}|{' '.join(COMPILE_ARGS)}|{pyx}".encode()).hexdigest()
+def _module_name(pyx: str, openmp: bool, args: tuple[str, ...]) -> str:
+    h = hashlib.sha256(f"{openmp}|{' '.join(args)}|{pyx}".encode()).hexdigest()
     return f"_treeflux_cy_{h[:24]}"
 
 
-def _load(pyx: str, openmp: bool):
-    module = _module_name(pyx, openmp)
+def _load(pyx: str, openmp: bool, args: tuple[str, ...] = COMPILE_ARGS):
+    module = _module_name(pyx, openmp, args)
     if module in sys.modules:
         return sys.modules[module]
     key = cache.make_key("cython", _cython_version(), module, pyx)
@@ -365,7 +369,7 @@ def _load(pyx: str, openmp: bool):
     def compile_into(work: Path):
         (work / f"{module}.pyx").write_text(pyx)
         res = subprocess.run([sys.executable, "-c", _BUILD_SCRIPT, str(work), module,
-                              "1" if openmp else "0", " ".join(COMPILE_ARGS)],
+                              "1" if openmp else "0", " ".join(args)],
                              capture_output=True, text=True)
         if res.returncode != 0:
             lines = [ln for ln in (res.stderr + res.stdout).splitlines() if "rror" in ln]
@@ -423,7 +427,8 @@ class CythonKernel(Kernel):
             self._local.threads = 1
 
 
-def build_from_source(pyx: str, n_inputs: int, n_outputs: int) -> CythonKernel:
+def build_from_source(pyx: str, n_inputs: int, n_outputs: int,
+                      args: tuple[str, ...] = COMPILE_ARGS) -> CythonKernel:
     """Build (or find in the cache) the module of ``pyx`` and wrap it: the
     pickling recipe of a Cython kernel."""
     openmp = openmp_available()
@@ -431,18 +436,18 @@ def build_from_source(pyx: str, n_inputs: int, n_outputs: int) -> CythonKernel:
         warnings.warn("treeflux: the C compiler has no OpenMP; the Cython kernel runs "
                       "serially within each call (threads come from the Python side)",
                       RuntimeWarning, stacklevel=2)
-    module = _load(pyx, openmp)
+    module = _load(pyx, openmp, tuple(args))
     if (module.N_INPUTS, module.N_OUTPUTS) != (n_inputs, n_outputs):
         raise RuntimeError(f"module {module.__name__} has shape "
                            f"{(module.N_INPUTS, module.N_OUTPUTS)}, expected {(n_inputs, n_outputs)}")
     return CythonKernel(module, n_inputs, n_outputs, openmp=openmp,
-                        recipe=(build_from_source, (pyx, n_inputs, n_outputs)))
+                        recipe=(build_from_source, (pyx, n_inputs, n_outputs, tuple(args))))
 
 
 def build(fn: Function, *, name: str = "treeflux_model") -> CythonKernel:
     """Emit ``fn`` as Cython, build it through the cache and load it in-process."""
     (pyx,) = emit(fn, name=name).values()
     with progress("native compilation (Cython)", total=1, unit="module") as bar:
-        kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs))
+        kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs), compile_args(fn))
         bar.update(1)
     return kernel
