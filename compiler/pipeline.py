@@ -107,7 +107,12 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             "trees": "the tree sums are no larger than the elimination form",
             "elimination": f"elimination needs {flops} flops, within the straight-line limit",
             "numeric": f"elimination needs {flops} flops, beyond the straight-line limit "
-                       f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination",
+                       f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination (compiles nothing; "
+                       f"straight-line code evaluates faster but takes long to build in process). "
+                       + (f"Standalone C (`compile --target c`) is the straight-line body, in "
+                          f"parts of vector statements (up to {MAX_EMIT_C_OPS:,} flops)"
+                          if flops <= MAX_EMIT_C_OPS else
+                          f"Standalone C is refused (above {MAX_EMIT_C_OPS:,} flops)"),
         }[chosen]
         return Plan(chosen, reasons, whole)
     if method == "trees":

@@ -2,21 +2,28 @@
 
 The emitted function evaluates a compacted :class:`~treeflux.compiler.ir.Function`
 for many rows of inputs. Rows are taken eight at a time and laid out side by
-side, input ``j`` of lane ``b`` in ``in[j][b]`` (a structure of arrays inside
-an array of blocks); each IR row becomes one loop ``for (b = 0; b < 8; b++)``
-with a fixed trip count, which gcc ``-O3 -march=native`` turns into vector
-instructions across the eight lanes. The last, partial block is padded with
-a copy of its last row and only its real rows are written back.
+side: input ``j`` of the block is one *row* ``in[j]`` holding its value for
+the eight lanes. With GNU C (gcc, clang) a row is a vector of eight doubles
+and each sum, product, quotient or negation of the IR is one vector statement
+(``TF_ROW``); libm calls and helpers run lane by lane (``TF_LANEWISE``).
+Elsewhere, or with ``-DTF_PORTABLE``, a row is ``double[8]`` and every
+statement is a loop over the lanes: the same operations in the same order,
+hence the same bits. The last, partial block is padded with a copy of its
+last row and only its real rows are written back.
 
-Temporaries live in one workspace ``w[S][8]``; a slot is reused as soon as
-the value it holds has had its last use (linear-scan allocation over the
-topological row order, lowest free slot first), so the stack stays small for
-bodies of tens of thousands of rows. The body is split into non-inlined
-functions of :data:`CHUNK_ROWS` rows that share the workspace: gcc's alias
-walk is quadratic in the memory accesses of one function (measured here: a
-2,700-row body took 35 s in parts of 1,500 rows, 3 s in parts of 100; a
-17,000-row body 21 s in parts of 150), and the split cost no measurable
-speed on Q3/Q4-sized bodies.
+Why vector statements: written as one lane loop per IR row, the optimiser
+analyses every loop (induction variables, dependences, SLP); measured here
+the Q4 Jacobian body (10,649 rows) took 200-590 s and a 400-state chain 35 s
+and 1.4 GB under gcc -O3. As vector statements they take about 3 s and 0.5 s
+(``benches/bench_compile.py``).
+
+Temporaries live in one workspace ``w[S]`` of rows; a slot is reused as soon
+as the value it holds has had its last use (linear-scan allocation over the
+topological row order, lowest free slot first). The body, and the copies of
+the outputs into the result rows, are split into non-inlined functions of
+:data:`CHUNK_ROWS` statements that share the workspace: gcc's alias walk is
+quadratic in the memory accesses of one function. Bodies above
+:data:`O1_ROWS` rows compile at ``-O1`` (:func:`flags_for`).
 
 The ABI is written into the header; :func:`emit` is deterministic (same
 Function and name, same bytes). Inputs and outputs are positions; emitted for
