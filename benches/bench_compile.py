@@ -14,7 +14,6 @@ from __future__ import annotations
 import resource
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -23,6 +22,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from tests.schemes import hypercube_scheme  # noqa: E402
+from tests.test_big_bodies import kernel_function  # noqa: E402
 
 from treeflux.compiler import Scheme  # noqa: E402
 from treeflux.compiler.backends import c as cback  # noqa: E402
@@ -78,22 +78,6 @@ def test_emit_c_of_128_states(benchmark, tmp_path):
     benchmark.extra_info.update(emit_seconds=emit_s, gcc_seconds=cc_s, goal_seconds=60)
 
 
-def _function(d):
-    captured = {}
-    real = cback.build
-
-    def grab(fn, *, name="treeflux_model"):
-        captured["fn"] = fn
-        return real(fn, name=name)
-
-    cback.build = grab
-    try:
-        compile_scheme(hypercube_scheme(d), backend="c", cache=False)
-    finally:
-        cback.build = real
-    return captured["fn"]
-
-
 def _ns_per_set(kernel, X, repeats=5):
     out = np.empty((X.shape[0], kernel.n_outputs))
     best = float("inf")
@@ -106,7 +90,7 @@ def _ns_per_set(kernel, X, repeats=5):
 
 @pytest.mark.parametrize("d", [3, 4])
 def test_split_costs_nothing_at_run_time(benchmark, d, monkeypatch):
-    fn = _function(d)
+    fn = kernel_function(d)
     X = np.exp(np.random.default_rng(d).uniform(-6.9, 6.9, (200_000, fn.n_inputs)))
     monkeypatch.setattr(cback, "CHUNK_ROWS", 50)
     split = cback.build(fn, name=f"split{d}")

@@ -24,7 +24,7 @@ CC = shutil.which("gcc") or shutil.which("cc")
 STRICT = ["-std=c99", "-Wall", "-Wextra", "-pedantic", "-Werror"]
 
 
-def _function(d):
+def kernel_function(d):
     """The IR Function a C kernel of Q_d evaluates (captured from compile_scheme)."""
     captured = {}
     real = cback.build
@@ -48,7 +48,7 @@ def _rates(n_rows, n_cols, seed):
 
 @pytest.mark.parametrize("d", [3, 4])
 def test_split_unsplit_and_portable_forms_give_the_same_bits(d, monkeypatch):
-    fn = _function(d)
+    fn = kernel_function(d)
     X = _rates(203, fn.n_inputs, d)  # 25 full blocks and a partial one
     split = cback.build(fn, name=f"split{d}")(X)
     monkeypatch.setattr(cback, "CHUNK_ROWS", 10 ** 9)
@@ -74,7 +74,7 @@ def test_split_unsplit_and_portable_forms_give_the_same_bits(d, monkeypatch):
 
 @pytest.mark.parametrize("d", [3, 4])
 def test_cython_gives_the_c_bits(d):
-    fn = _function(d)
+    fn = kernel_function(d)
     X = _rates(77, fn.n_inputs, 10 + d)
     assert np.array_equal(cyback.build(fn, name=f"cy{d}")(X), cback.build(fn, name=f"c{d}")(X))
 
