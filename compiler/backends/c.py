@@ -288,12 +288,14 @@ _ROWS = """\
    correctly rounded either way: the same bits. */
 #if defined(__GNUC__) && !defined(TF_PORTABLE)
 #define TF_NOINLINE __attribute__((noinline))
+#define TF_ALIGNED __attribute__((aligned(TF_LANES * sizeof(double))))
 typedef double tf_row __attribute__((vector_size(TF_LANES * sizeof(double))));
 #define TF_ROW(...) do { __VA_ARGS__; } while (0)
 #define TF_V(r) (r)
 #define TF_T tf_row
 #else
 #define TF_NOINLINE
+#define TF_ALIGNED
 typedef double tf_row[TF_LANES];
 #define TF_ROW(...) for (b = 0; b < TF_LANES; b++) { __VA_ARGS__; }
 #define TF_V(r) (r)[b]
@@ -324,8 +326,8 @@ static double tf_powi(double a, int m)
 _DRIVER = """\
 int {name}_eval_range(const double *x, double *out, long start, long stop)
 {{
-    tf_row in[TF_NI];
-    tf_row res[TF_NR];
+    TF_ALIGNED double in[TF_NI][TF_LANES];
+    TF_ALIGNED double res[TF_NR][TF_LANES];
     long r0;
     for (r0 = start; r0 < stop; r0 += TF_LANES) {{
         int n = stop - r0 < TF_LANES ? (int)(stop - r0) : TF_LANES;
@@ -337,7 +339,7 @@ int {name}_eval_range(const double *x, double *out, long start, long stop)
         for (b = 0; b < n && bad == n; b++)
             for (j = 0; j < {n_in}; j++)
                 if (!isfinite(in[j][b])) {{ bad = b; break; }}
-        tf_block((const tf_row *)in, res);
+        tf_block((const tf_row *)in, (tf_row *)res);
 {validate}        for (b = 0; b < bad; b++) {{
             double *row = out + (r0 + b) * (long)TF_NO;
             for (k = 0; k < TF_NO; k++) row[k] = res[k][b];
@@ -376,7 +378,7 @@ _RETURNS_CHECKED = """\
 """
 
 _VALIDATE = """\
-static int tf_valid(const tf_row *res, int b)
+static int tf_valid(const double (*res)[TF_LANES], int b)
 {{
     int k;
     double s;
@@ -536,7 +538,7 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     if interface is not None:
         names_h, names_c = _name_tables(interface, name)
         fields["validate"] = ("        for (b = 0; b < bad; b++)\n"
-                              "            if (!tf_valid((const tf_row *)res, b)) "
+                              "            if (!tf_valid((const double (*)[TF_LANES])res, b)) "
                               "{ bad = b; break; }\n")
         blocks = "".join(_VALIDATE_BLOCK.format(a=a, b=b, tol=literal(probability_tolerance(b - a)))
                          for a, b in probability_blocks(interface))
