@@ -33,6 +33,10 @@ METHODS = ("auto", "trees", "elimination", "equilibrium", "numeric")
 # native compile time grows superlinearly and the looped numeric path wins
 # (TECH-NOTES: Q6 ≈ 17,800 flops compiles in seconds, 90,000 in half a minute).
 STRAIGHT_LINE_LIMIT = 20_000
+# `treeflux compile --target c` writes straight-line C up to this many
+# elimination flops (a 128-state scheme, ≈123,000 flops, emits and compiles
+# with gcc -O3 in well under a minute: benches/bench_compile.py).
+MAX_EMIT_C_OPS = 200_000
 # Symbolic elimination builds one IR node per operation; beyond this the
 # graph itself costs hundreds of megabytes.
 MAX_SYMBOLIC_OPS = 1_000_000
@@ -166,7 +170,12 @@ def plan(scheme: Scheme, method: str = "auto") -> Plan:
             "trees": "the tree sums are no larger than the elimination form",
             "elimination": f"elimination needs {flops} flops, within the straight-line limit",
             "numeric": f"elimination needs {flops} flops, beyond the straight-line limit "
-                       f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination",
+                       f"{STRAIGHT_LINE_LIMIT}: looped numeric elimination (compiles nothing; "
+                       f"straight-line code evaluates faster but takes long to build in process). "
+                       + (f"Standalone C (`compile --target c`) is the straight-line body, in "
+                          f"parts of vector statements (up to {MAX_EMIT_C_OPS:,} flops)"
+                          if flops <= MAX_EMIT_C_OPS else
+                          f"Standalone C is refused (above {MAX_EMIT_C_OPS:,} flops)"),
         }[chosen]
         return made(chosen)
     if method == "trees":
@@ -590,9 +599,15 @@ def emit(scheme: Scheme, target: str, out_dir, *, method: str = "auto") -> list[
     """Write standalone source for ``target`` into ``out_dir``; returns the paths."""
     back = _backend(target)
     chosen = plan(scheme, method)
+    if chosen.method == "numeric" and target == "c" and method == "auto" \
+            and chosen.reasons["elimination_flops"] <= MAX_EMIT_C_OPS:
+        # Standalone C has no looped path to fall back on: the body, in
+        # parts of vector statements, compiles in well under a minute here.
+        chosen = plan(scheme, "elimination")
     if chosen.method == "numeric":
         raise TooLargeError(f"{scheme.origin}: too large for straight-line source "
-                            f"({chosen.reasons['elimination_flops']:,} flops); use the looped numeric path")
+                            f"({chosen.reasons['elimination_flops']:,} flops; C takes up to "
+                            f"{MAX_EMIT_C_OPS:,}); evaluate it with treeflux (the looped numeric path)")
     fn, iface = _emit_function(scheme, method=chosen.method, checks=target in ("python", "c", "cython"))
     name = stem(scheme.name)
     files = dict(back.emit(fn, name=name, interface=iface) if target in ("python", "c", "cython")

@@ -162,7 +162,7 @@ def test_long_body_is_split_into_parts_and_agrees(parts, kernel):
     assert cback.computed_rows(whole) > 2 * cback.CHUNK_ROWS
     text = cyback.emit(whole, name="stacked")["stacked.pyx"]
     n_parts = -(-cback.computed_rows(whole) // cback.CHUNK_ROWS)
-    assert text.count("cdef void _part") == n_parts and f"_part{n_parts - 1}(w)" in text
+    assert text.count("void tf_part") == n_parts and f"tf_part{n_parts - 1}(in, w)" in text
     X = inputs(parts, 21, 8)
     assert np.all(np.isfinite(kernel(X)))
     np.testing.assert_allclose(kernel(X)[:, so], numpy_reference(fn, X[:, si]), rtol=1e-14, atol=0)
@@ -173,9 +173,10 @@ def test_lane_loops_cover_every_row_in_a_reused_workspace(parts):
     _, whole, _ = parts
     text = cyback.emit(whole, name="stacked")["stacked.pyx"]
     _, n_slots = cback.allocate_slots(whole)
-    assert text.count(f"for b in range({cback.LANES}): w[") == cback.computed_rows(whole)
+    import re
+    assert len(re.findall(r"^    TF_(ROW|LANEWISE)\(TF_[VL]\(w\[", text, re.M)) == cback.computed_rows(whole)
     assert n_slots < cback.computed_rows(whole) / 2  # liveness lets slots be reused
-    words = (whole.n_inputs + n_slots) * cback.LANES
+    words = (whole.n_inputs + len(whole.outputs)) * cback.LANES  # inputs, then results
     assert f"malloc({words} * sizeof(double) + 64)" in text
     assert "cdef double t" not in text  # no scalar row temporaries left
 

@@ -2,21 +2,28 @@
 
 The emitted function evaluates a compacted :class:`~treeflux.compiler.ir.Function`
 for many rows of inputs. Rows are taken eight at a time and laid out side by
-side, input ``j`` of lane ``b`` in ``in[j][b]`` (a structure of arrays inside
-an array of blocks); each IR row becomes one loop ``for (b = 0; b < 8; b++)``
-with a fixed trip count, which gcc ``-O3 -march=native`` turns into vector
-instructions across the eight lanes. The last, partial block is padded with
-a copy of its last row and only its real rows are written back.
+side: input ``j`` of the block is one *row* ``in[j]`` holding its value for
+the eight lanes. With GNU C (gcc, clang) a row is a vector of eight doubles
+and each sum, product, quotient or negation of the IR is one vector statement
+(``TF_ROW``); libm calls and helpers run lane by lane (``TF_LANEWISE``).
+Elsewhere, or with ``-DTF_PORTABLE``, a row is ``double[8]`` and every
+statement is a loop over the lanes: the same operations in the same order,
+hence the same bits. The last, partial block is padded with a copy of its
+last row and only its real rows are written back.
 
-Temporaries live in one workspace ``w[S][8]``; a slot is reused as soon as
-the value it holds has had its last use (linear-scan allocation over the
-topological row order, lowest free slot first), so the stack stays small for
-bodies of tens of thousands of rows. The body is split into non-inlined
-functions of :data:`CHUNK_ROWS` rows that share the workspace: gcc's alias
-walk is quadratic in the memory accesses of one function (measured here: a
-2,700-row body took 35 s in parts of 1,500 rows, 3 s in parts of 100; a
-17,000-row body 21 s in parts of 150), and the split cost no measurable
-speed on Q3/Q4-sized bodies.
+Why vector statements: written as one lane loop per IR row, the optimiser
+analyses every loop (induction variables, dependences, SLP); measured here
+the Q4 Jacobian body (10,649 rows) took 200-590 s and a 400-state chain 35 s
+and 1.4 GB under gcc -O3. As vector statements they take about 3 s and 0.5 s
+(``benches/bench_compile.py``).
+
+Temporaries live in one workspace ``w[S]`` of rows; a slot is reused as soon
+as the value it holds has had its last use (linear-scan allocation over the
+topological row order, lowest free slot first). The body, and the copies of
+the outputs into the result rows, are split into non-inlined functions of
+:data:`CHUNK_ROWS` statements that share the workspace: gcc's alias walk is
+quadratic in the memory accesses of one function. Bodies above
+:data:`O1_ROWS` rows compile at ``-O1`` (:func:`flags_for`).
 
 The ABI is written into the header; :func:`emit` is deterministic (same
 Function and name, same bytes). Inputs and outputs are positions; emitted for
@@ -51,6 +58,8 @@ POWI_LIMIT = 64
 MAX_OPERANDS = 32
 
 BASE_FLAGS = ("-std=c99", "-march=native", "-fno-math-errno")
+#: Bodies with more computed rows than this compile at -O1 (see :func:`flags_for`).
+O1_ROWS = 5_000
 
 
 def c_identifier(name: str) -> str:
@@ -66,13 +75,19 @@ def c_identifier(name: str) -> str:
     return ident
 
 
-def flags_for(fn: Function) -> tuple[str, ...]:
-    """Compiler flags for the body of ``fn``.
+def flags_for(fn: Function | None) -> tuple[str, ...]:
+    """Compiler flags for the body of ``fn`` (shared with the Cython back end).
 
-    Always ``-O3``: gcc 12 at ``-O2`` leaves the lane loops scalar, and with
-    the body split into parts of :data:`CHUNK_ROWS` rows the compile time of
-    ``-O3`` grows linearly (its alias walk is quadratic within a function)."""
-    return ("-O3", *BASE_FLAGS)
+    ``-O3`` up to :data:`O1_ROWS` computed rows, ``-O1`` above. The body is
+    explicit vector statements, so ``-O1`` keeps it vectorised; what it gives
+    up is the driver's loop tuning, measured here (one run, loaded machine,
+    N = 200,000): Q3 47 → 60 ns, Q4 130 → 158 ns per set at ``-O1``, while the
+    Q4 Jacobian body (10,649 rows) runs the same at both (2.3 µs) and the
+    128-state body compiles in 20 s of CPU at ``-O1`` against 31 s at
+    ``-O3``. Both levels give the same bits (no contraction under
+    ``-std=c99``, no value-changing options)."""
+    big = fn is not None and computed_rows(fn) > O1_ROWS
+    return ("-O1" if big else "-O3", *BASE_FLAGS)
 
 
 def computed_rows(fn: Function) -> int:
@@ -253,20 +268,42 @@ _PRELUDE = """\
 #include <math.h>
 #include "{name}.h"
 
-#if defined(__GNUC__)
-#define TF_NOINLINE __attribute__((noinline))
-#else
-#define TF_NOINLINE
-#endif
-
-#define TF_LANES 8
-#define TF_NI {n_in_dim}
+{rows}#define TF_NI {n_in_dim}
 #define TF_NO {n_out}
 #define TF_NR {n_res}
 #define TF_NW {n_slots}
 
 const int {name}_n_inputs = {n_in};
 const int {name}_n_outputs = {n_out};
+"""
+
+_ROWS = """\
+#define TF_LANES 8
+
+/* A row holds one value for each of the TF_LANES parameter sets of a block.
+   With GNU C (gcc, clang) it is a vector of doubles and a body row is one
+   vector statement: no loops for the optimiser to analyse, so big bodies
+   compile in seconds. Elsewhere (or with -DTF_PORTABLE) it is an array and
+   every row is a loop over the lanes. Same operations in the same order,
+   correctly rounded either way: the same bits. */
+#if defined(__GNUC__) && !defined(TF_PORTABLE)
+#define TF_NOINLINE __attribute__((noinline))
+#define TF_ALIGNED __attribute__((aligned(TF_LANES * sizeof(double))))
+typedef double tf_row __attribute__((vector_size(TF_LANES * sizeof(double))));
+#define TF_ROW(...) do { __VA_ARGS__; } while (0)
+#define TF_V(r) (r)
+#define TF_T tf_row
+#else
+#define TF_NOINLINE
+#define TF_ALIGNED
+typedef double tf_row[TF_LANES];
+#define TF_ROW(...) for (b = 0; b < TF_LANES; b++) { __VA_ARGS__; }
+#define TF_V(r) (r)[b]
+#define TF_T double
+#endif
+/* One lane of a row, in either form (lane b), and a loop over the lanes. */
+#define TF_L(r) (r)[b]
+#define TF_LANEWISE(...) for (b = 0; b < TF_LANES; b++) { __VA_ARGS__; }
 """
 
 #: Helpers, each emitted only when the body calls it.
@@ -289,8 +326,8 @@ static double tf_powi(double a, int m)
 _DRIVER = """\
 int {name}_eval_range(const double *x, double *out, long start, long stop)
 {{
-    double in[TF_NI][TF_LANES];
-    double res[TF_NR][TF_LANES];
+    TF_ALIGNED double in[TF_NI][TF_LANES];
+    TF_ALIGNED double res[TF_NR][TF_LANES];
     long r0;
     for (r0 = start; r0 < stop; r0 += TF_LANES) {{
         int n = stop - r0 < TF_LANES ? (int)(stop - r0) : TF_LANES;
@@ -302,7 +339,7 @@ int {name}_eval_range(const double *x, double *out, long start, long stop)
         for (b = 0; b < n && bad == n; b++)
             for (j = 0; j < {n_in}; j++)
                 if (!isfinite(in[j][b])) {{ bad = b; break; }}
-        tf_block((const double (*)[TF_LANES])in, res);
+        tf_block((const tf_row *)in, (tf_row *)res);
 {validate}        for (b = 0; b < bad; b++) {{
             double *row = out + (r0 + b) * (long)TF_NO;
             for (k = 0; k < TF_NO; k++) row[k] = res[k][b];
@@ -365,18 +402,32 @@ _VALIDATE_BLOCK = """\
 """
 
 
-def _lane_loop(target: str, rhs: str) -> str:
-    return f"    for (b = 0; b < TF_LANES; b++) {target}[b] = {rhs};\n"
+#: IR ops that are one arithmetic expression over whole rows (vector
+#: statements in GNU C); the others (libm calls, helpers) run lane by lane.
+ROW_OPS = frozenset({"add", "mul", "div", "sub", "neg"})
 
 
-def _row_loop(fn: Function, i: int, ref, target: str) -> str:
-    """The lane loop of IR row ``i``; a long row accumulates in a local ``t``."""
-    parts = expression_parts(fn, i, ref, acc="t", max2="tf_max2", powi="tf_powi")
+def _row_statement(fn: Function, i: int, ref_row, ref_lane, target: int) -> str:
+    """The statement of IR row ``i`` writing workspace slot ``target``.
+
+    Sums, products, quotients and negations are whole-row expressions
+    (``TF_ROW``, operands ``TF_V(...)``); everything else runs lane by lane
+    (``TF_LANEWISE``, operands ``TF_L(...)``), as does a row of constants
+    only (a scalar cannot be assigned to a vector). A long row accumulates in a
+    local ``t`` (a row, or a lane)."""
+    g = fn.graph
+    row = g.ops[i] in ROW_OPS and any(g.ops[a] != "const" for a in g.args[i])
+    ref = ref_row if row else ref_lane
+    wrap, acc, kind = ("TF_ROW", "t", "tf_row") if row else ("TF_LANEWISE", "t", "double")
+    dest = f"TF_V(w[{target}])" if row else f"TF_L(w[{target}])"
+    parts = expression_parts(fn, i, ref, acc=acc, max2="tf_max2", powi="tf_powi")
     if len(parts) == 1:
-        return _lane_loop(target, parts[0])
-    lines = [f"        double t = {parts[0]};\n", *(f"        t = {p};\n" for p in parts[1:])]
-    return ("    for (b = 0; b < TF_LANES; b++) {\n" + "".join(lines)
-            + f"        {target}[b] = t;\n    }}\n")
+        return f"    {wrap}({dest} = {parts[0]});\n"
+    if row:  # portable form: t is one lane; GNU form: t is a row
+        kind = "TF_T"
+    body = "".join([f"        {kind} t = {parts[0]};\n", *(f"        t = {p};\n" for p in parts[1:]),
+                    f"        {dest} = t;\n"])
+    return f"    {wrap}(\n{body}    );\n"
 
 
 def block_layout(fn: Function, *, input_ref, slot_ref):
@@ -401,27 +452,57 @@ def block_layout(fn: Function, *, input_ref, slot_ref):
 
 
 def _body(fn: Function) -> str:
-    """The block function(s): inputs ``in[j][b]``, workspace ``w``, results ``res``."""
-    slot, n_slots, ref, parts = block_layout(fn, input_ref=lambda j: f"in[{j}][b]",
-                                             slot_ref=lambda k: f"w[{k}][b]")
+    """The block function(s): input rows ``in[j]``, workspace ``w``, results ``res``.
+
+    Both the IR rows and the copies of the outputs into ``res`` go into
+    non-inlined parts of at most :data:`CHUNK_ROWS` statements that share
+    the workspace: gcc's alias walk and SLP vectoriser are quadratic in the
+    memory accesses of one function (one function of a thousand output
+    copies cost 24 s and 1.3 GB on a 400-state chain)."""
+    slot, n_slots, ref_row, parts = block_layout(fn, input_ref=lambda j: f"TF_V(in[{j}])",
+                                                 slot_ref=lambda k: f"TF_V(w[{k}])")
+    _, _, ref_lane, _ = block_layout(fn, input_ref=lambda j: f"TF_L(in[{j}])",
+                                     slot_ref=lambda k: f"TF_L(w[{k}])")
+    g = fn.graph
     parts = parts or [[]]
     out = []
-    sig = "const double (*restrict in)[TF_LANES], double (*restrict w)[TF_LANES]"
+    sig = "const tf_row *restrict in, tf_row *restrict w"
     for p, chunk in enumerate(parts):
         out.append(f"static TF_NOINLINE void tf_part{p}({sig})\n{{\n    int b;\n")
         out.append("    (void)in; (void)w; (void)b;\n")
-        for i in chunk:
-            out.append(_row_loop(fn, i, ref, f"w[{slot[i]}]"))
+        out.extend(_row_statement(fn, i, ref_row, ref_lane, slot[i]) for i in chunk)
         out.append("}\n\n")
-    out.append("static void tf_block(const double (*restrict in)[TF_LANES], "
-               "double (*restrict res)[TF_LANES])\n{\n")
-    out.append("    double w[TF_NW][TF_LANES];\n    int b;\n    (void)b;\n")
+    stores = list(enumerate(fn.outputs))
+    store_parts = [stores[k:k + CHUNK_ROWS] for k in range(0, len(stores), CHUNK_ROWS)]
+    sig = "const tf_row *restrict in, const tf_row *restrict w, tf_row *restrict res"
+    for p, chunk in enumerate(store_parts):
+        out.append(f"static TF_NOINLINE void tf_store{p}({sig})\n{{\n    int b;\n")
+        out.append("    (void)in; (void)w; (void)b;\n")
+        for k, o in chunk:
+            if g.ops[o] == "const":  # a scalar: lane by lane
+                out.append(f"    TF_LANEWISE(TF_L(res[{k}]) = {ref_lane(o)});\n")
+            else:
+                out.append(f"    TF_ROW(TF_V(res[{k}]) = {ref_row(o)});\n")
+        out.append("}\n\n")
+    out.append("static void tf_block(const tf_row *restrict in, tf_row *restrict res)\n{\n")
+    out.append("    tf_row w[TF_NW];\n")
     for p in range(len(parts)):
         out.append(f"    tf_part{p}(in, w);\n")
-    for k, o in enumerate(fn.outputs):
-        out.append(_lane_loop(f"res[{k}]", ref(o)))
+    for p in range(len(store_parts)):
+        out.append(f"    tf_store{p}(in, (const tf_row *)w, res);\n")
     out.append("}\n\n")
     return "".join(out), n_slots
+
+
+def block_source(fn: Function) -> tuple[str, int]:
+    """The C text that evaluates ``fn`` on one block of lanes, shared by the
+    C and Cython back ends: the row type and its macros, the helpers the body
+    calls, the parts, and ``tf_block(in, res)`` (input rows in, output rows
+    res). Needs ``TF_NI``, ``TF_NR`` and ``TF_NW`` defined before it (the
+    slot count is returned) and ``<math.h>``."""
+    body, n_slots = _body(fn)
+    helpers = "".join("\n" + text for h, text in _HELPERS.items() if h + "(" in body)
+    return _ROWS + helpers + "\n" + body, n_slots
 
 
 def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
@@ -451,7 +532,7 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
         raise ValueError("a function with no outputs has nothing to emit")
     body, n_slots = _body(fn)
     fields = dict(name=name, n_in=n_in, n_in_dim=max(1, n_in), n_out=n_out, n_res=n_res,
-                  n_slots=max(1, n_slots), validate="")
+                  n_slots=max(1, n_slots), validate="", rows=_ROWS)
     helpers = "".join("\n" + text for h, text in _HELPERS.items() if h + "(" in body)
     names_h = names_c = ""
     if interface is not None:

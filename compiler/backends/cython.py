@@ -10,7 +10,7 @@ range(8)`` over a typed ``int b`` on a raw pointer, which Cython writes as a
 plain C ``for`` with a fixed trip count and gcc ``-O3 -march=native``
 vectorises across the lanes. A single base pointer means the compiler sees
 every access as a constant offset from it, so no aliasing question arises.
-The body is split into functions of :data:`.c.CHUNK_ROWS` rows
+The body is the C back end's block text (:func:`.c.block_source`: rows as GNU C vector statements in parts of :data:`.c.CHUNK_ROWS`), embedded verbatim; earlier text: split into functions of rows
 (``-fno-inline-functions-called-once`` keeps them apart: gcc's alias walk is
 quadratic within one function). The last, partial block is padded with a
 copy of its last row and only its real rows are written back.
@@ -53,7 +53,7 @@ from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
-from .c import LANES, block_layout, c_identifier, expression_parts
+from .c import LANES, block_source, c_identifier, flags_for
 from .naming import (Interface, probability_blocks, probability_tolerance, py_model_api, py_names)
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
@@ -62,6 +62,12 @@ from .naming import (Interface, probability_blocks, probability_tolerance, py_mo
 #: functions (each is called once, from ``_block``).
 COMPILE_ARGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=off",
                 "-fno-inline-functions-called-once")
+
+
+def compile_args(fn: Function | None) -> tuple[str, ...]:
+    """:data:`COMPILE_ARGS` at the optimisation level the C back end picks
+    for ``fn`` (:func:`.c.flags_for`: ``-O1`` for big bodies)."""
+    return (flags_for(fn)[0], *COMPILE_ARGS[1:])
 
 _PYX = """\
 # cython: language_level=3, boundscheck=False, wraparound=False
@@ -76,8 +82,10 @@ _PYX = """\
 #   written. With threads > 1 the blocks of {lanes} rows are shared out by OpenMP (prange,
 #   static schedule) when the module was built with it.
 #
-# Workspace of one thread: w[(j)*{lanes} + b] is input j of lane b, then
-# w[({n_in} + s)*{lanes} + b] is slot s ({n_slots} slots).
+# Workspace of one thread: w[j*{lanes} + b] is input j of lane b, then
+# w[({n_in} + k)*{lanes} + b] is result k of lane b (outputs, then rates).
+# The body is the C back end's (treeflux.compiler.backends.c.block_source),
+# verbatim: rows as vector statements over the lanes, in parts.
 from cython.parallel cimport prange
 from libc.math cimport exp, log, sqrt, pow{math_extra}
 from libc.stdint cimport uintptr_t
@@ -87,22 +95,19 @@ N_INPUTS = {n_in}
 N_OUTPUTS = {n_out}
 {names}
 
-cdef inline double _max2(double a, double b) noexcept nogil:
-    return a if a > b else b
+cdef extern from *:
+    '''
+#define TF_NI {n_in_dim}
+#define TF_NR {n_res}
+#define TF_NW {n_slots_dim}
+{block}
+static void tf_block_flat(const double *in, double *res)
+{{
+    tf_block((const tf_row *)in, (tf_row *)res);
+}}
+'''
+    void tf_block_flat(const double *inp, double *res) noexcept nogil
 
-
-cdef inline double _powi(double a, int m) noexcept nogil:
-    cdef double r = 1.0
-    while m:
-        if m & 1:
-            r *= a
-        a *= a
-        m >>= 1
-    return r
-
-{parts}
-cdef void _block(double *w) noexcept nogil:
-{calls}
 
 {valid_fn}cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
                       Py_ssize_t stop) noexcept nogil:
@@ -134,7 +139,7 @@ cdef void _block(double *w) noexcept nogil:
             if nan_lane[b] != nan_lane[b]:
                 bad = b
                 break
-        _block(w)
+        tf_block_flat(w, w + {res_at})
 {validate}        for b in range(bad):
             yr = y + (r0 + b) * {n_out}
 {stores}        if bad < n:
@@ -207,7 +212,7 @@ setup(name="{name}", ext_modules=cythonize([ext], language_level=3, quiet=True))
 def embed_example(fn: Function, name: str, interface: Interface | None = None) -> dict[str, str]:
     """``setup.py``: the build recipe of the emitted ``.pyx`` (see its text)."""
     name = c_identifier(name)
-    return {"setup.py": _SETUP.format(name=name, flags=list(COMPILE_ARGS))}
+    return {"setup.py": _SETUP.format(name=name, flags=list(compile_args(fn)))}
 
 
 def _names(iface: Interface | None) -> str:
@@ -234,22 +239,24 @@ _VALIDATE = """\
 """
 
 
-def _valid_function(fn: Function, iface: Interface, ref) -> str:
+def _valid_function(n_in: int, n_out: int, n_res: int, iface: Interface) -> str:
     """``_valid(w, b)``: 1 when lane b's rates are positive and finite and its
-    results finite probability vectors (the trailing ``iface.checks`` outputs
-    of ``fn`` are the rates)."""
-    n_out = len(fn.outputs) - iface.checks
-    lines = ["cdef int _valid(double *w, int b) noexcept nogil:", "    cdef double s, v"]
-    for o in fn.outputs[n_out:]:
-        lines += [f"    v = {ref(o)}", "    if not (v > 0.0 and isfinite(v)):", "        return 0"]
-    for o in fn.outputs[:n_out]:
-        lines += [f"    v = {ref(o)}", "    if not isfinite(v):", "        return 0"]
+    results finite probability vectors (results ``n_out..n_res-1`` are the
+    rates). Loops over the result rows, not one statement per output: a
+    function of a thousand statements costs gcc seconds."""
+    def lane(k: str) -> str:
+        return f"w[({n_in} + {k}) * {LANES} + b]"
+
+    lines = ["cdef int _valid(double *w, int b) noexcept nogil:", "    cdef double s, v",
+             "    cdef int k",
+             f"    for k in range({n_out}, {n_res}):", f"        v = {lane('k')}",
+             "        if not (v > 0.0 and isfinite(v)):", "            return 0",
+             f"    for k in range({n_out}):", f"        v = {lane('k')}",
+             "        if not isfinite(v):", "            return 0"]
     for a, b in probability_blocks(iface):
-        lines.append("    s = 0.0")
-        for o in fn.outputs[a:b]:
-            lines += [f"    v = {ref(o)}", "    if not (v >= 0.0 and v <= 1.0):",
-                      "        return 0", "    s += v"]
-        lines += [f"    if fabs(s - 1.0) > {probability_tolerance(b - a)!r}:", "        return 0"]
+        lines += ["    s = 0.0", f"    for k in range({a}, {b}):", f"        v = {lane('k')}",
+                  "        if not (v >= 0.0 and v <= 1.0):", "            return 0", "        s += v",
+                  f"    if fabs(s - 1.0) > {probability_tolerance(b - a)!r}:", "        return 0"]
     lines += ["    return 1", "", "", ""]
     return "\n".join(lines)
 
@@ -268,34 +275,19 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     n_in, n_out = fn.n_inputs, len(fn.outputs) - (interface.checks if interface else 0)
     if n_out <= 0:
         raise ValueError("a function with no outputs has nothing to emit")
-    slot, n_slots, ref, chunks = block_layout(
-        fn, input_ref=lambda j: f"w[{j * LANES} + b]",
-        slot_ref=lambda k: f"w[{(n_in + k) * LANES} + b]")
-    parts = []
-    for p, chunk in enumerate(chunks):
-        lines = [f"\ncdef void _part{p}(double *w) noexcept nogil:\n    cdef int b\n"]
-        for i in chunk:
-            target = f"w[{(n_in + slot[i]) * LANES} + b]"
-            rhs = expression_parts(fn, i, ref, acc="t", max2="_max2", powi="_powi")
-            if len(rhs) == 1:
-                lines.append(f"    for b in range({LANES}): {target} = {rhs[0]}\n")
-                continue
-            if "    cdef double t\n" not in lines:
-                lines.insert(1, "    cdef double t\n")
-            lines.append(f"    for b in range({LANES}):\n        t = {rhs[0]}\n"
-                         + "".join(f"        t = {r}\n" for r in rhs[1:])
-                         + f"        {target} = t\n")
-        parts.append("".join(lines))
-    calls = "".join(f"    _part{p}(w)\n" for p in range(len(chunks))) or "    pass\n"
-    stores = "".join(f"            yr[{k}] = {ref(o)}\n" for k, o in enumerate(fn.outputs[:n_out]))
+    block, n_slots = block_source(fn)
+    n_res = len(fn.outputs)
+    stores = (f"            for j in range({n_out}):\n"
+              f"                yr[j] = w[({n_in} + j) * {LANES} + b]\n")
     checked = interface is not None
-    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, n_slots=n_slots, lanes=LANES,
-                       lanes_less=LANES - 1, n_words=max(1, n_in + n_slots) * LANES,
-                       parts="".join(parts), calls=calls, stores=stores,
+    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),
+                       n_res=n_res, n_slots_dim=max(1, n_slots), block=block,
+                       res_at=n_in * LANES, lanes_less=LANES - 1,
+                       n_words=(n_in + n_res) * LANES, stores=stores,
                        names=_names(interface),
                        refused=_REFUSED_CHECKED if checked else _REFUSED_INPUTS,
                        math_extra=", fabs, isfinite" if checked else "",
-                       valid_fn=_valid_function(fn, interface, ref) if checked else "",
+                       valid_fn=_valid_function(n_in, n_out, n_res, interface) if checked else "",
                        validate=_VALIDATE if checked else "")
     digest = hashlib.sha256(text.encode()).hexdigest()
     text += f'\nVERSION = "sha256:{digest}"\n'
@@ -363,13 +355,13 @@ shutil.rmtree(os.path.join(work, "build"), ignore_errors=True)
 """
 
 
-def _module_name(pyx: str, openmp: bool) -> str:
-    h = hashlib.sha256(f"{openmp}|{' '.join(COMPILE_ARGS)}|{pyx}".encode()).hexdigest()
+def _module_name(pyx: str, openmp: bool, args: tuple[str, ...]) -> str:
+    h = hashlib.sha256(f"{openmp}|{' '.join(args)}|{pyx}".encode()).hexdigest()
     return f"_treeflux_cy_{h[:24]}"
 
 
-def _load(pyx: str, openmp: bool):
-    module = _module_name(pyx, openmp)
+def _load(pyx: str, openmp: bool, args: tuple[str, ...] = COMPILE_ARGS):
+    module = _module_name(pyx, openmp, args)
     if module in sys.modules:
         return sys.modules[module]
     key = cache.make_key("cython", _cython_version(), module, pyx)
@@ -377,7 +369,7 @@ def _load(pyx: str, openmp: bool):
     def compile_into(work: Path):
         (work / f"{module}.pyx").write_text(pyx)
         res = subprocess.run([sys.executable, "-c", _BUILD_SCRIPT, str(work), module,
-                              "1" if openmp else "0", " ".join(COMPILE_ARGS)],
+                              "1" if openmp else "0", " ".join(args)],
                              capture_output=True, text=True)
         if res.returncode != 0:
             lines = [ln for ln in (res.stderr + res.stdout).splitlines() if "rror" in ln]
@@ -435,7 +427,8 @@ class CythonKernel(Kernel):
             self._local.threads = 1
 
 
-def build_from_source(pyx: str, n_inputs: int, n_outputs: int) -> CythonKernel:
+def build_from_source(pyx: str, n_inputs: int, n_outputs: int,
+                      args: tuple[str, ...] = COMPILE_ARGS) -> CythonKernel:
     """Build (or find in the cache) the module of ``pyx`` and wrap it: the
     pickling recipe of a Cython kernel."""
     openmp = openmp_available()
@@ -443,18 +436,18 @@ def build_from_source(pyx: str, n_inputs: int, n_outputs: int) -> CythonKernel:
         warnings.warn("treeflux: the C compiler has no OpenMP; the Cython kernel runs "
                       "serially within each call (threads come from the Python side)",
                       RuntimeWarning, stacklevel=2)
-    module = _load(pyx, openmp)
+    module = _load(pyx, openmp, tuple(args))
     if (module.N_INPUTS, module.N_OUTPUTS) != (n_inputs, n_outputs):
         raise RuntimeError(f"module {module.__name__} has shape "
                            f"{(module.N_INPUTS, module.N_OUTPUTS)}, expected {(n_inputs, n_outputs)}")
     return CythonKernel(module, n_inputs, n_outputs, openmp=openmp,
-                        recipe=(build_from_source, (pyx, n_inputs, n_outputs)))
+                        recipe=(build_from_source, (pyx, n_inputs, n_outputs, tuple(args))))
 
 
 def build(fn: Function, *, name: str = "treeflux_model") -> CythonKernel:
     """Emit ``fn`` as Cython, build it through the cache and load it in-process."""
     (pyx,) = emit(fn, name=name).values()
     with progress("native compilation (Cython)", total=1, unit="module") as bar:
-        kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs))
+        kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs), compile_args(fn))
         bar.update(1)
     return kernel
