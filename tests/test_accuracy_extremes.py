@@ -53,7 +53,7 @@ def random_case(seed, n, decades, dense=False):
 # ------------------------------------------------------------------ looped numeric path
 
 @pytest.mark.parametrize("decades", [100, 12, 3])
-@pytest.mark.parametrize("n,dense", [(4, True), (8, False), (12, True), (20, False), (40, False)])
+@pytest.mark.parametrize("n,dense", [(4, True), (8, False), (12, True), (20, False), (40, False), (100, False)])
 def test_numeric_path_random(decades, n, dense):
     for seed in range(2):
         edges, rates = random_case(1000 * n + seed + decades, n, decades, dense)
