@@ -74,7 +74,7 @@ def _savefig(fig, path) -> None:
     from pathlib import Path
     from treeflux.runtime.safe_io import output_path
     with output_path(path) as tmp:
-        fig.savefig(tmp, dpi=120, format=Path(path).suffix[1:].lower())
+        fig.savefig(tmp, dpi=120, format=Path(path).suffix[1:].lower(), bbox_inches="tight")
 
 
 def _pyplot():
@@ -484,7 +484,7 @@ def _print_sample_summary(r, stats) -> None:
 
 def _plot_samples(plt, r, path, r2=None, labels=("scheme", None)):
     import numpy as np
-    fig, ax = plt.subplots(figsize=(6, 4))
+    fig, ax = plt.subplots(figsize=(7, 5.5))
     runs = [(r, labels[0], "C0", "-")]
     if r2 is not None:
         runs.append((r2, labels[1]["label"], "C3", "--"))
@@ -502,7 +502,7 @@ def _plot_samples(plt, r, path, r2=None, labels=("scheme", None)):
         ax.set_xscale("log")
         ax.set_xlabel(f"EC50 of {r['response']['observable']} in {r['response']['input']}")
         ax.set_ylabel("effective Hill coefficient (model prediction)")
-        ax.legend(fontsize="small", markerscale=2)
+        ax.legend(fontsize="small", markerscale=2, loc="upper center", bbox_to_anchor=(0.5, -0.14))
     else:
         outputs = [c for c in r["columns"] if c not in r["ranges"]]
         shown = outputs[:8] if r2 is None else [c for c in outputs if not c.startswith("p_")][:4] or outputs[:4]
@@ -516,9 +516,9 @@ def _plot_samples(plt, r, path, r2=None, labels=("scheme", None)):
         ax.set_ylabel("samples")
         ax.legend(fontsize="small")
     if r2 is not None:
-        ax.set_title(f"Model predictions: {labels[0]} vs its {labels[1]['label']}"
+        ax.set_title(f"Model predictions: {labels[0]}\nvs its {labels[1]['label']}"
                      if labels[1]["kind"] == "equilibrium_restriction"
-                     else f"Model predictions: {labels[0]} vs {labels[1]['label']}", fontsize=9)
+                     else f"Model predictions: {labels[0]}\nvs {labels[1]['label']}", fontsize=9)
     fig.tight_layout()
     _savefig(fig, path)
     plt.close(fig)
