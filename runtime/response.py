@@ -14,13 +14,17 @@ fixed), over a range [LO, HI]:
   stays accurate at extreme inputs, stepping outwards (half a decade or 1/8
   of the range width at first, then ever larger steps) until the end of
   float64 (1e±300) or until the model refuses the input or a rate
-  overflows or turns negative:
-  the limit is the farthest value, and it is *established* only when the
+  overflows or turns negative — or, once past the dense steps (12 decades
+  or 3 range widths), until the last three values agree and are not near 0
+  (walking on would only repeat the limit; a limit of 0 is followed to the
+  float64 edge): the limit is the farthest value, and it is *established* only when the
   last three values agree to ``max(1e-12 × span, 16 ε |f|)``. A limit that
   is not established is reported and never assumed: the curve is then
   normalized to the range and a warning says so. A change of the observable
   narrower than the spacing far out (beyond 12 decades, or 3 range widths on
-  a linear axis, from the range) can be missed; none past 1e±300 is seen;
+  a linear axis, from the range) can be missed, and so can one that begins
+  after the curve has settled there to the limit tolerance; none past
+  1e±300 is seen;
 - **normalization** ``"limits"`` (default): ŷ = (f − min L)/|L_hi − L_lo| for
   a monotone curve, so ŷ runs from 0 to 1 over the domain; ``"range"``:
   ŷ = (f − f_min)/(f_max − f_min) over the grid;
@@ -167,18 +171,42 @@ class _Curves:
         v[~np.isfinite(v)] = np.nan
         return v
 
-    def tail(self, points: np.ndarray) -> np.ndarray:
+    def tail(self, points: np.ndarray, settle_from: int, seen: np.ndarray) -> np.ndarray:
         """f at ``points`` (ordered outwards) for every row, NaN from a row's
-        first refusal on (the domain or float64 ends there for that row)."""
+        first refusal on (the domain or float64 ends there for that row).
+
+        From point ``settle_from`` on (past the dense steps), a row stops
+        once its last three values agree to ``max(1e-12 × span, 16 ε |f|)``
+        of the values seen so far (``seen``, (N, k), and this tail): its
+        limit is then established, and walking on to 1e±300 would only
+        repeat it — at the price of the multiprecision recompute that rates
+        near the float64 edges need. A row whose values are within that
+        tolerance of 0 walks on, so a limit of 0 is reported as the value at
+        the float64 edge (~0), not as the last small value. Span and size only grow as values are
+        added, so a row stopped here is also established by
+        :func:`_tail_limit` on everything examined."""
         N = len(self.base)
         F = np.full((N, len(points)), np.nan)
         alive = np.arange(N)
+        with np.errstate(invalid="ignore"):
+            hi, lo = np.nanmax(seen, axis=1), np.nanmin(seen, axis=1)
+            big = np.nanmax(np.abs(seen), axis=1)
         for j, x in enumerate(points):
             if not len(alive):
                 break
             v = self.safe_raw(alive, np.full(len(alive), x))
             F[alive, j] = v
             alive = alive[np.isfinite(v)]
+            if not len(alive):
+                break
+            w = F[alive, j]
+            hi[alive], lo[alive] = np.fmax(hi[alive], w), np.fmin(lo[alive], w)
+            big[alive] = np.fmax(big[alive], np.abs(w))
+            if j >= max(settle_from, 2):
+                tol = np.maximum(LIMIT_TOLERANCE * (hi[alive] - lo[alive]), 16 * _EPS * big[alive])
+                d1 = np.abs(w - F[alive, j - 1])
+                d2 = np.abs(F[alive, j - 1] - F[alive, j - 2])
+                alive = alive[~((d1 <= tol) & (d2 <= tol) & (np.abs(w) > tol))]
         return F
 
     def norm(self, rows: np.ndarray, u: np.ndarray) -> np.ndarray:
@@ -335,7 +363,8 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
                               f"{'' if N == 1 else f', parameter set {r}'}); nothing to normalize")
     # ------------------------------------------------ tails and limits
     lower_x, upper_x = axis.tail(-1), axis.tail(+1)
-    TL, TU = curves.tail(lower_x), curves.tail(upper_x)
+    TL = curves.tail(lower_x, axis.settle_from(-1), Y)
+    TU = curves.tail(upper_x, axis.settle_from(+1), np.hstack([Y, TL]))
     seq_u = np.concatenate([axis.to_u(lower_x[::-1]), u_grid, axis.to_u(upper_x)])
     F = np.hstack([TL[:, ::-1], Y, TU])                    # ascending in x
     with np.errstate(invalid="ignore"):
