@@ -41,7 +41,7 @@ fixed), over a range [LO, HI]:
   (Goldbeter & Koshland [1]_), defined for inputs that are not signed;
 - slopes dŷ/dx and dŷ/d ln x are central differences of the model in u,
   maximized in magnitude over the range by a golden-section search around
-  the steepest grid interval; the log-slope is not defined for a signed input;
+  the steepest grid interval, to 1e-7 in u (``SLOPE_XTOL``); the log-slope is not defined for a signed input;
 - a least-squares fit of the Hill function x^n/(K^n + x^n) [2]_ to ŷ gives a
   reference curve (on the range widened to cover EC10–EC90 and their width
   again on each side, so a cut range does not bend it); for a signed input,
@@ -80,6 +80,11 @@ NORMALIZATIONS = ("limits", "range")
 # Central-difference step in u: (machine epsilon)^(1/3) balances the
 # truncation error (∝ h²) against rounding (∝ eps/h); about 1e-10 relative.
 FD_STEP = 6e-6
+# Where the steepest slope lies is placed to this width in u (relative to the
+# range width on a linear axis): the central-difference slope carries a relative
+# error of ~1e-10, so its maximum is only defined to ~1e-5 in u; steps below
+# 1e-7 change the reported maximum by < 1e-13 of itself.
+SLOPE_XTOL = 1e-7
 # A response whose span over the range is below this fraction of its size is flat.
 FLAT_TOLERANCE = 1e-12
 LIMIT_TOLERANCE = 1e-12        # agreement of the last tail values, relative to the span
@@ -224,12 +229,14 @@ class _Curves:
         h = self.step(u)
         k = len(rows)
         fwd = np.zeros(k, dtype=bool) if self.axis.log or self.axis.domain == "signed" else u - h < 0
-        both = self.norm(np.concatenate([rows, rows, rows]),
-                         np.concatenate([u + h, np.where(fwd, u + 2 * h, u - h), u]))
-        up, other, mid = both[:k], both[k:2 * k], both[2 * k:]
-        central = (up - other) / (2.0 * h)
-        forward = (4.0 * up - other - 3.0 * mid) / (2.0 * h)
-        return np.where(fwd, forward, central)
+        f = np.flatnonzero(fwd)                 # the one-sided rows also need f(u)
+        both = self.norm(np.concatenate([rows, rows, rows[f]]),
+                         np.concatenate([u + h, np.where(fwd, u + 2 * h, u - h), u[f]]))
+        up, other = both[:k], both[k:2 * k]
+        d = (up - other) / (2.0 * h)
+        if len(f):
+            d[f] = (4.0 * up[f] - other[f] - 3.0 * both[2 * k:]) / (2.0 * h[f])
+        return d
 
 
 # ------------------------------------------------------------------ limits and shape
@@ -532,7 +539,7 @@ def _slopes(curves: _Curves, axis: Axis, grid, u_grid, Yn, ok_mask, out) -> None
             def mag(rows, u, tr=tr):
                 return np.abs(tr(curves.slope(rows, u), u))
 
-            u_best, _ = golden_max(mag, ok, a, b)
+            u_best, _ = golden_max(mag, ok, a, b, xtol=SLOPE_XTOL * (1.0 if axis.log else axis.hi - axis.lo))
             at[ok] = axis.to_x(u_best)
             val[ok] = tr(curves.slope(ok, u_best), u_best)
         out[key] = val

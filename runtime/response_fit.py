@@ -50,13 +50,16 @@ def illinois(fun, rows, a, b, fa, fb, *, tol=1e-13, max_iter=100):
     return root
 
 
-def golden_max(fun, rows, a, b, *, iterations=60):
-    """Maximize fun(rows, u) over u in [a, b] for every row (golden section)."""
+def golden_max(fun, rows, a, b, *, iterations=60, xtol=0.0):
+    """Maximize fun(rows, u) over u in [a, b] for every row (golden section),
+    until every bracket is narrower than ``xtol`` or ``iterations`` steps."""
     a, b = np.array(a, dtype=float), np.array(b, dtype=float)
     x1 = b - _GOLDEN * (b - a)
     x2 = a + _GOLDEN * (b - a)
     f1, f2 = fun(rows, x1), fun(rows, x2)
     for _ in range(iterations):
+        if xtol > 0 and not (b - a > xtol).any():
+            break
         left = f1 >= f2           # maximum lies in [a, x2]
         b = np.where(left, x2, b)
         a = np.where(left, a, x1)
