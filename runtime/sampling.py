@@ -386,15 +386,24 @@ def _new_cluster(workers: int):
 
 def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
     """Start a LocalCluster of ``workers`` single-threaded processes in the
-    background, run blocks here from the front while it starts (a start costs
-    each worker about a second of imports), then the rest on the cluster;
-    the cluster is closed (workers stopped) however this ends."""
+    background and run blocks here from the front while it starts (a start
+    costs each worker about a second of imports). The moment the cluster is
+    up, the starting thread hands every block this process has not claimed
+    to it, so the workers begin while this process finishes the block in
+    hand; the cluster is closed (workers stopped) however this ends."""
     dd = _distributed()
     started: dict = {}
+    lock = threading.Lock()
+    claimed = [0]                     # blocks this process has taken, from the front
 
     def start():
         try:
             started["cluster"] = _new_cluster(workers)
+            started["client"] = dd.Client(started["cluster"])
+            with lock:
+                started["from"] = k = claimed[0]
+            if k < len(blocks):
+                started["futures"] = _submit(started["client"], model, sweep, blocks[k:])
         except BaseException as exc:  # noqa: BLE001 — handed to the caller's thread
             started["error"] = exc
 
@@ -403,18 +412,24 @@ def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
         with _sigint_ignored():
             thread = threading.Thread(target=start, name="treeflux-cluster-start", daemon=True)
             thread.start()
-            while thread.is_alive() and len(parts) < len(blocks):
-                a, b = blocks[len(parts)]
+            while True:
+                with lock:
+                    if "from" in started or "error" in started or claimed[0] >= len(blocks):
+                        break
+                    i = claimed[0]
+                    claimed[0] += 1
+                a, b = blocks[i]
                 parts.append(run_block(model, sweep, a, b))
                 bar.update(b - a)
             thread.join()
         if "error" in started:
             raise EvaluationError(f"could not start {workers} local workers: {started['error']}")
-        if len(parts) < len(blocks):
-            with dd.Client(started["cluster"]) as client:
-                parts += _on_cluster(client, model, sweep, blocks[len(parts):], bar)
+        if "futures" in started:
+            parts += _collect(started["client"], started["futures"], blocks[len(parts):], bar)
         return parts
     finally:
+        if started.get("client") is not None:
+            started["client"].close()
         if started.get("cluster") is not None:
             started["cluster"].close()
 
@@ -433,8 +448,16 @@ def _connect(address: str):
 
 def _on_cluster(client, model, sweep: Sweep, blocks, bar) -> list:
     """Run the blocks as tasks, collect them in order as they finish."""
+    return _collect(client, _submit(client, model, sweep, blocks), blocks, bar)
+
+
+def _submit(client, model, sweep: Sweep, blocks) -> list:
+    return [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
+
+
+def _collect(client, futures, blocks, bar) -> list:
+    """Results of ``futures`` (one per block) in block order, as they finish."""
     dd = _distributed()
-    futures = [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
     where = {f.key: i for i, f in enumerate(futures)}
     parts: list = [None] * len(futures)
     try:
