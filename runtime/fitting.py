@@ -151,6 +151,94 @@ def _refuse_time(starts: int, per_start: float, budget: float, how: str) -> None
                               f"TREEFLUX_TIME_BUDGET")
 
 
+# Kernels split a call over threads only above 2,048 rows per thread
+# (runtime.kernel.MIN_ROWS_PER_THREAD); below this many rows a fit asks for one
+# thread and so skips the per-call core count.
+ONE_THREAD_ROWS = 4096
+MEMORY = 8                  # evaluation points a fit remembers (r and J at each)
+
+
+class _Problem:
+    """The residuals r(u) = (prediction − measurement)/σ of a fit and their
+    Jacobian ∂r/∂u, u = ln θ of the free parameters.
+
+    Every evaluation goes through the model's checked public calls
+    (``observables``, ``steady_state``, ``observable_jacobian``, ``jacobian``:
+    input validation, the steady-state guard, the recompute of untrusted rows)
+    on one C-contiguous float64 array of the data rows, built once; only its
+    free columns are overwritten with θ = exp(u). The measured entries are
+    picked out by precomputed (row, column) indices, so an evaluation costs one
+    model call plus a few array operations. The last ``MEMORY`` points are
+    remembered: the optimizer starts where the time probe evaluated, and the
+    report needs r and J at an optimum the optimizer has already evaluated.
+    """
+
+    def __init__(self, model, X, free_idx, cols, Y, S):
+        self.model = model
+        self.X = np.array(X, dtype=np.float64, order="C")      # owned: written in place
+        self.free = np.asarray(free_idx, dtype=np.intp)
+        self.Y, self.S = Y, S
+        self.threads = 1 if self.X.shape[0] < ONE_THREAD_ROWS else None
+        # residual j is column k of row rows[j] of the observables (is_obs) or of p
+        is_obs = np.concatenate([np.full(int(mask.sum()), o, dtype=bool) for o, _, mask in cols])
+        self.rows = np.concatenate([np.flatnonzero(mask) for _, _, mask in cols])
+        ks = np.concatenate([np.full(int(mask.sum()), k, dtype=np.intp) for _, k, mask in cols])
+        self.parts = [(at, self.rows[at], ks[at])
+                      for at in (np.flatnonzero(is_obs), np.flatnonzero(~is_obs))]
+        self.need_obs, self.need_states = (bool(at.size) for at, _, _ in self.parts)
+        self._P = np.empty((self.X.shape[0], len(model.states))) if self.need_states else None
+        self._memory: dict = {}
+
+    def _slot(self, u) -> list:
+        """[r, J] remembered at u (None where not yet evaluated); sets θ = exp(u)."""
+        u = np.asarray(u, dtype=np.float64)
+        key = u.tobytes()
+        slot = self._memory.get(key)
+        if slot is None:
+            while len(self._memory) >= MEMORY:
+                self._memory.pop(next(iter(self._memory)))
+            slot = self._memory[key] = [None, None]
+        return slot
+
+    def _set(self, u) -> None:
+        self.X[:, self.free] = np.exp(u)
+
+    def residuals(self, u) -> np.ndarray:
+        slot = self._slot(u)
+        if slot[0] is None:
+            self._set(u)
+            (obs_at, obs_rows, obs_k), (st_at, st_rows, st_k) = self.parts
+            pred = np.empty(len(self.Y))
+            m, X = self.model, self.X
+            if self.need_states:
+                P = m.steady_state(X, out=self._P, threads=self.threads)
+                pred[st_at] = P[st_rows, st_k]
+                O = m.observables_from(X, P) if self.need_obs else None
+            else:
+                O = m.observables(X, threads=self.threads)
+            if self.need_obs:
+                pred[obs_at] = O[obs_rows, obs_k]
+            slot[0] = (pred - self.Y) / self.S
+        return slot[0].copy()
+
+    def jacobian(self, u) -> np.ndarray:
+        """∂r/∂ln θ of the free parameters from the compiled Jacobians."""
+        slot = self._slot(u)
+        if slot[1] is None:
+            self._set(u)
+            D = np.empty((len(self.Y), len(self.free)))
+            free = self.free[None, :]
+            calls = (self.model.observable_jacobian, self.model.jacobian)
+            for (at, rows, k), call, needed in zip(self.parts, calls, (self.need_obs, self.need_states)):
+                if needed:
+                    J = call(self.X, threads=self.threads)
+                    D[at] = J[rows[:, None], k[:, None], free]
+            if not self.model.info.log_jacobian:
+                D *= self.X[self.rows[:, None], free]       # ∂/∂ln θ = θ ∂/∂θ
+            slot[1] = D / self.S[:, None]
+        return slot[1].copy()
+
+
 def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         max_evaluations: int = 2000, max_seconds: float | None = None,
         profile=None) -> dict:
@@ -240,31 +328,8 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
     Y, S = np.concatenate(Y), np.concatenate(S)
     m_res, p = len(Y), len(free)
     analytic = _has_jacobian(model, cols)
-
-    def at(u):
-        Xu = X.copy()
-        Xu[:, free_idx] = np.exp(u)
-        return Xu
-
-    def residuals(u):
-        Xu = at(u)
-        P = model.steady_state(Xu)
-        O = model.observables_from(Xu, P) if any(is_obs for is_obs, _, _ in cols) else None
-        pred = np.concatenate([(O if is_obs else P)[mask, k] for is_obs, k, mask in cols])
-        return (pred - Y) / S
-
-    def jacobian(u):
-        """∂r/∂ln θ of the free parameters from the compiled Jacobians."""
-        Xu = at(u)
-        Jp = model.jacobian(Xu) if any(not is_obs for is_obs, _, _ in cols) else None
-        Jo = model.observable_jacobian(Xu) if any(is_obs for is_obs, _, _ in cols) else None
-        rows = []
-        for is_obs, k, mask in cols:
-            D = (Jo if is_obs else Jp)[:, k, :][:, free_idx]
-            if not model.info.log_jacobian:
-                D = D * Xu[:, free_idx]
-            rows.append(D[mask])
-        return np.concatenate(rows) / S[:, None]
+    problem = _Problem(model, X, free_idx, cols, Y, S)
+    residuals, jacobian = problem.residuals, problem.jacobian
 
     lo = np.log([model.info.bounds[q][0] for q in free])
     hi = np.log([model.info.bounds[q][1] for q in free])
