@@ -169,8 +169,9 @@ class _Problem:
     free columns are overwritten with θ = exp(u). The measured entries are
     picked out by precomputed (row, column) indices, so an evaluation costs one
     model call plus a few array operations. The last ``MEMORY`` points are
-    remembered: the optimizer starts where the time probe evaluated, and the
-    report needs r and J at an optimum the optimizer has already evaluated.
+    remembered, and the best optimum is held (:meth:`keep`): the optimizer
+    starts where the time probe evaluated, and the report needs r and J at an
+    optimum the optimizer has already evaluated.
     """
 
     def __init__(self, model, X, free_idx, cols, Y, S):
@@ -188,17 +189,22 @@ class _Problem:
         self.need_obs, self.need_states = (bool(at.size) for at, _, _ in self.parts)
         self._P = np.empty((self.X.shape[0], len(model.states))) if self.need_states else None
         self._memory: dict = {}
+        self._kept: dict = {}          # the best optimum so far, never pushed out
 
     def _slot(self, u) -> list:
-        """[r, J] remembered at u (None where not yet evaluated); sets θ = exp(u)."""
-        u = np.asarray(u, dtype=np.float64)
-        key = u.tobytes()
-        slot = self._memory.get(key)
+        """[r, J] remembered at u (None where not yet evaluated)."""
+        key = np.asarray(u, dtype=np.float64).tobytes()
+        slot = self._kept.get(key) or self._memory.get(key)
         if slot is None:
             while len(self._memory) >= MEMORY:
                 self._memory.pop(next(iter(self._memory)))
             slot = self._memory[key] = [None, None]
         return slot
+
+    def keep(self, u) -> None:
+        """Hold on to the point u (the best optimum so far) for the report."""
+        key = np.asarray(u, dtype=np.float64).tobytes()
+        self._kept = {key: self._slot(u)}
 
     def _set(self, u) -> None:
         self.X[:, self.free] = np.exp(u)
@@ -227,14 +233,14 @@ class _Problem:
         if slot[1] is None:
             self._set(u)
             D = np.empty((len(self.Y), len(self.free)))
-            free = self.free[None, :]
             calls = (self.model.observable_jacobian, self.model.jacobian)
             for (at, rows, k), call, needed in zip(self.parts, calls, (self.need_obs, self.need_states)):
                 if needed:
-                    J = call(self.X, threads=self.threads)
-                    D[at] = J[rows[:, None], k[:, None], free]
+                    J = call(self.X, threads=self.threads)          # (N, outputs, symbols)
+                    flat = J.reshape(-1, J.shape[2])[rows * J.shape[1] + k]
+                    D[at] = flat[:, self.free]
             if not self.model.info.log_jacobian:
-                D *= self.X[self.rows[:, None], free]       # ∂/∂ln θ = θ ∂/∂θ
+                D *= np.exp(u)                  # ∂/∂ln θ = θ ∂/∂θ (θ = exp(u) on every row)
             slot[1] = D / self.S[:, None]
         return slot[1].copy()
 
@@ -370,6 +376,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
                 _refuse_time(starts, time.perf_counter() - t0, budget, "the first start's time")
             if best is None or res.cost < best.cost:
                 best = res
+                problem.keep(res.x)
             bar.update(1)
     u = best.x
     r = residuals(u)
@@ -522,7 +529,9 @@ def _spectrum(J: np.ndarray, p: int, tolerance: float = NULL_TOLERANCE):
     """Singular values of J (p of them, zeros added when m < p), the right singular
     vectors as rows, and which singular values count as zero (≤ tolerance · largest)."""
     s_full = np.zeros(p)
-    _, s, Vt = np.linalg.svd(J, full_matrices=True)
+    # only V is needed: U in full would be m × m (32 MB for 2,000 residuals); all
+    # p rows of V^T come back in the thin form whenever m ≥ p
+    _, s, Vt = np.linalg.svd(J, full_matrices=J.shape[0] < p)
     s_full[:len(s)] = s
     smax = float(s_full.max()) if p else 0.0
     small = s_full <= tolerance * smax if smax > 0 else np.ones(p, dtype=bool)
