@@ -415,7 +415,8 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         with progress("profiling", total=len(profile), unit="parameter") as bar:
             for q in profile:
                 result["profiles"][q] = profile_interval(residuals, u, lo, hi, free.index(q), scale,
-                                                         result["log_uncertainties"][q], free)
+                                                         result["log_uncertainties"][q], free,
+                                                         jacobian=jacobian if analytic else None)
                 bar.update(1)
     return result
 
@@ -602,7 +603,8 @@ def _identifiability_message(info: dict, p: int) -> str:
 # ------------------------------------------------------------------ profile likelihood
 
 def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, *,
-                     level: float = 0.95, max_steps: int = 40, refine: int | None = None) -> dict:
+                     level: float = 0.95, max_steps: int = 40, refine: int | None = None,
+                     jacobian=None) -> dict:
     """Profile-likelihood interval of parameter ``k``.
 
     ln θ_k is fixed on a grid walking out from the optimum in both directions
@@ -612,16 +614,20 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
     variance s², as for the standard errors — so on a linear problem the
     interval equals the Wald interval θ̂·exp(±z σ_ln)); each end is refined by
     bisection. An end is open when Δcost stays below the threshold up to the
-    parameter's bound.
+    parameter's bound. ``jacobian`` (∂r/∂u at a full u, e.g. from the compiled
+    Jacobian) is handed to the re-fits; without it they use forward differences.
     """
     from scipy.optimize import least_squares
-    from scipy.stats import chi2, norm
+    from scipy.special import ndtri
     refine = PROFILE_REFINE if refine is None else refine
     name = names[k]
     if scale is None:
         return {"parameter": name, "lower": None, "upper": None, "lower_open": None, "upper_open": None,
                 "note": "no degrees of freedom to scale the threshold (and no sigma columns)"}
-    threshold = 0.5 * float(chi2.ppf(level, 1)) * scale
+    # χ²₁ is the square of a standard normal: its level quantile is z² with z the
+    # (1 + level)/2 normal quantile (common practice; spares importing scipy.stats)
+    z = float(ndtri(0.5 + level / 2))
+    threshold = 0.5 * z * z * scale
     others = [j for j in range(len(u_hat)) if j != k]
     r0 = residuals(u_hat)
     cost0 = 0.5 * float(r0 @ r0)
@@ -637,7 +643,12 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
             def sub(v):
                 full[others] = v
                 return residuals(full)
-            res = least_squares(sub, x0, bounds=(lo_o, hi_o), method="trf", xtol=1e-12,
+
+            def sub_jacobian(v):
+                full[others] = v
+                return jacobian(full)[:, others]
+            res = least_squares(sub, x0, jac=sub_jacobian if jacobian is not None else "2-point",
+                                bounds=(lo_o, hi_o), method="trf", xtol=1e-12,
                                 ftol=1e-12, gtol=1e-12, max_nfev=500)
             full[others] = res.x
         rr = residuals(full)
@@ -680,7 +691,6 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
         ends[side] = end
     wald = None
     if log_sigma is not None and np.isfinite(log_sigma):
-        z = float(norm.ppf(0.5 + level / 2))
         wald = [math.exp(u_hat[k] - z * log_sigma), math.exp(u_hat[k] + z * log_sigma)]
     out = {"parameter": name, "best": math.exp(u_hat[k]), "level": level,
            "threshold_delta_cost": threshold,

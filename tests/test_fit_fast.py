@@ -185,3 +185,27 @@ def test_refusals_unchanged(enzyme):
         fit(enzyme, {"S": S, "velocity": v}, values={"E0": E0}, starts=0)
     with pytest.raises(EvaluationError, match="no free parameters"):
         fit(enzyme, {"S": S, "velocity": v}, values={"E0": E0, "k_cat": 1.0, "k_on": 1.0})
+
+
+def test_profiles_with_the_compiled_jacobian_match_forward_differences(enzyme):
+    from scipy.stats import chi2
+
+    from treeflux.runtime.fitting import profile_interval
+
+    v, sigma = _noisy()
+    data = {"S": S, "velocity": v, "sigma_velocity": sigma}
+    r = fit(enzyme, data, values={"E0": E0}, profile=["k_cat"])
+    prof = r["profiles"]["k_cat"]
+    # the threshold is half the 95 % quantile of chi-square with one degree of freedom (scipy.stats) times s²
+    assert prof["threshold_delta_cost"] == pytest.approx(0.5 * chi2.ppf(0.95, 1) * r["residual_variance"],
+                                                         rel=1e-13)
+    problem = _problem(enzyme, data, {"E0": E0}, ["k_on", "k_cat"])
+    u = np.log([r["parameters"]["k_on"], r["parameters"]["k_cat"]])
+    lo, hi = np.log([0.01, 0.01]), np.log([100.0, 1000.0])
+    by_differences = profile_interval(problem.residuals, u, lo, hi, 1, r["residual_variance"],
+                                      r["log_uncertainties"]["k_cat"], ["k_on", "k_cat"])
+    assert prof["lower"] == pytest.approx(by_differences["lower"], rel=1e-7)
+    assert prof["upper"] == pytest.approx(by_differences["upper"], rel=1e-7)
+    # near-linear here: the profile interval is close to the Wald interval
+    assert prof["lower"] == pytest.approx(prof["wald_interval"][0], rel=2e-3)
+    assert prof["upper"] == pytest.approx(prof["wald_interval"][1], rel=2e-3)
