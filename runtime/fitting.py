@@ -180,14 +180,20 @@ class _Problem:
         self.free = np.asarray(free_idx, dtype=np.intp)
         self.Y, self.S = Y, S
         self.threads = 1 if self.X.shape[0] < ONE_THREAD_ROWS else None
-        # residual j is column k of row rows[j] of the observables (is_obs) or of p
+        # residual j is column k of row rows[j] of the observables (is_obs) or of p;
+        # per part: its positions among the residuals, the flat positions of its
+        # entries in O (or P) and of their free-parameter derivatives in the Jacobian
         is_obs = np.concatenate([np.full(int(mask.sum()), o, dtype=bool) for o, _, mask in cols])
-        self.rows = np.concatenate([np.flatnonzero(mask) for _, _, mask in cols])
+        rows = np.concatenate([np.flatnonzero(mask) for _, _, mask in cols])
         ks = np.concatenate([np.full(int(mask.sum()), k, dtype=np.intp) for _, k, mask in cols])
-        self.parts = [(at, self.rows[at], ks[at])
-                      for at in (np.flatnonzero(is_obs), np.flatnonzero(~is_obs))]
-        self.need_obs, self.need_states = (bool(at.size) for at, _, _ in self.parts)
-        self._P = np.empty((self.X.shape[0], len(model.states))) if self.need_states else None
+        n_sym = self.X.shape[1]
+        self.parts = []
+        for here, width in ((is_obs, len(model.observable_names)), (~is_obs, len(model.states))):
+            at = np.flatnonzero(here)
+            entry = rows[at] * width + ks[at]
+            self.parts.append((at if at.size < len(Y) else None, entry,
+                               entry[:, None] * n_sym + self.free[None, :]) if at.size else None)
+        self._P = np.empty((self.X.shape[0], len(model.states))) if self.parts[1] else None
         self._memory: dict = {}
         self._kept: dict = {}          # the best optimum so far, never pushed out
 
@@ -213,18 +219,16 @@ class _Problem:
         slot = self._slot(u)
         if slot[0] is None:
             self._set(u)
-            (obs_at, obs_rows, obs_k), (st_at, st_rows, st_k) = self.parts
-            pred = np.empty(len(self.Y))
-            m, X = self.model, self.X
-            if self.need_states:
+            m, X, (obs, states) = self.model, self.X, self.parts
+            if states:
                 P = m.steady_state(X, out=self._P, threads=self.threads)
-                pred[st_at] = P[st_rows, st_k]
-                O = m.observables_from(X, P) if self.need_obs else None
+                O = m.observables_from(X, P) if obs else None
             else:
-                O = m.observables(X, threads=self.threads)
-            if self.need_obs:
-                pred[obs_at] = O[obs_rows, obs_k]
-            slot[0] = (pred - self.Y) / self.S
+                P, O = None, m.observables(X, threads=self.threads)
+            pred = self._gather(((obs, O, 1), (states, P, 1)))
+            pred -= self.Y
+            pred /= self.S
+            slot[0] = pred
         return slot[0].copy()
 
     def jacobian(self, u) -> np.ndarray:
@@ -232,17 +236,30 @@ class _Problem:
         slot = self._slot(u)
         if slot[1] is None:
             self._set(u)
-            D = np.empty((len(self.Y), len(self.free)))
-            calls = (self.model.observable_jacobian, self.model.jacobian)
-            for (at, rows, k), call, needed in zip(self.parts, calls, (self.need_obs, self.need_states)):
-                if needed:
-                    J = call(self.X, threads=self.threads)          # (N, outputs, symbols)
-                    flat = J.reshape(-1, J.shape[2])[rows * J.shape[1] + k]
-                    D[at] = flat[:, self.free]
-            if not self.model.info.log_jacobian:
+            m, X, (obs, states) = self.model, self.X, self.parts
+            Jo = m.observable_jacobian(X, threads=self.threads) if obs else None
+            Jp = m.jacobian(X, threads=self.threads) if states else None
+            D = self._gather(((obs, Jo, 2), (states, Jp, 2)))
+            if not m.info.log_jacobian:
                 D *= np.exp(u)                  # ∂/∂ln θ = θ ∂/∂θ (θ = exp(u) on every row)
-            slot[1] = D / self.S[:, None]
+            D /= self.S[:, None]
+            slot[1] = D
         return slot[1].copy()
+
+    def _gather(self, sources) -> np.ndarray:
+        """The measured entries (which=1) or their free-parameter derivatives
+        (which=2) from each part's array, in residual order."""
+        out = None
+        for part, A, which in sources:
+            if part is None:
+                continue
+            at, picked = part[0], np.take(A, part[which])
+            if at is None:
+                return picked                     # one part holds every residual
+            if out is None:
+                out = np.empty((len(self.Y),) + picked.shape[1:])
+            out[at] = picked
+        return out
 
 
 def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
@@ -333,6 +350,9 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         S.append(sig[mask])
     Y, S = np.concatenate(Y), np.concatenate(S)
     m_res, p = len(Y), len(free)
+    if m_res == 0:
+        raise EvaluationError(f"the data have no measured values: every cell of "
+                              f"{', '.join(repr(o) for o in obs_cols)} is empty")
     analytic = _has_jacobian(model, cols)
     problem = _Problem(model, X, free_idx, cols, Y, S)
     residuals, jacobian = problem.residuals, problem.jacobian

@@ -209,3 +209,9 @@ def test_profiles_with_the_compiled_jacobian_match_forward_differences(enzyme):
     # near-linear here: the profile interval is close to the Wald interval
     assert prof["lower"] == pytest.approx(prof["wald_interval"][0], rel=2e-3)
     assert prof["upper"] == pytest.approx(prof["wald_interval"][1], rel=2e-3)
+
+
+def test_data_without_a_measured_value_are_refused(enzyme):
+    # every observable cell empty: nothing to fit (a fit used to return the starting values)
+    with pytest.raises(EvaluationError, match="no measured values: every cell of 'velocity' is empty"):
+        fit(enzyme, {"S": [1.0, 2.0], "velocity": [np.nan, np.nan]}, values={"E0": E0})
