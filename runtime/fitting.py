@@ -29,7 +29,17 @@ kon*koff; only koff/kon is identifiable"), strong correlations
 (|r| > 0.9) and the degrees of freedom are reported, and profile-likelihood
 intervals (Venzon & Moolgavkar 1988; Bates & Watts ch. 6) are computed for
 the parameters asked for: each fixed on a grid, the others re-fitted, the
-interval where Δ(Σ r²) ≤ χ²₁(0.95) s².
+interval where Δ(Σ r²) ≤ χ²₁(0.95) s² (the re-fits use the compiled Jacobian
+when the model has one).
+
+Evaluation (:class:`_Problem`): the data rows are one C-contiguous float64
+array built once; each residual or Jacobian evaluation writes θ = exp(u) into
+its free columns and makes one checked public call of the model
+(``observables``/``observable_jacobian``, or ``steady_state``/``jacobian`` for
+state columns), then gathers the measured entries by precomputed flat
+indices. Recent points are remembered, so the optimizer's start (already
+evaluated by the time probe) and the reported optimum are not evaluated
+twice. ``benches/bench_fit.py`` measures where a fit's time goes.
 """
 
 from __future__ import annotations
