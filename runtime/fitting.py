@@ -29,7 +29,17 @@ kon*koff; only koff/kon is identifiable"), strong correlations
 (|r| > 0.9) and the degrees of freedom are reported, and profile-likelihood
 intervals (Venzon & Moolgavkar 1988; Bates & Watts ch. 6) are computed for
 the parameters asked for: each fixed on a grid, the others re-fitted, the
-interval where Δ(Σ r²) ≤ χ²₁(0.95) s².
+interval where Δ(Σ r²) ≤ χ²₁(0.95) s² (the re-fits use the compiled Jacobian
+when the model has one).
+
+Evaluation (:class:`_Problem`): the data rows are one C-contiguous float64
+array built once; each residual or Jacobian evaluation writes θ = exp(u) into
+its free columns and makes one checked public call of the model
+(``observables``/``observable_jacobian``, or ``steady_state``/``jacobian`` for
+state columns), then gathers the measured entries by precomputed flat
+indices. Recent points are remembered, so the optimizer's start (already
+evaluated by the time probe) and the reported optimum are not evaluated
+twice. ``benches/bench_fit.py`` measures where a fit's time goes.
 """
 
 from __future__ import annotations
@@ -151,6 +161,117 @@ def _refuse_time(starts: int, per_start: float, budget: float, how: str) -> None
                               f"TREEFLUX_TIME_BUDGET")
 
 
+# Kernels split a call over threads only above 2,048 rows per thread
+# (runtime.kernel.MIN_ROWS_PER_THREAD); below this many rows a fit asks for one
+# thread and so skips the per-call core count.
+ONE_THREAD_ROWS = 4096
+MEMORY = 8                  # evaluation points a fit remembers (r and J at each)
+
+
+class _Problem:
+    """The residuals r(u) = (prediction − measurement)/σ of a fit and their
+    Jacobian ∂r/∂u, u = ln θ of the free parameters.
+
+    Every evaluation goes through the model's checked public calls
+    (``observables``, ``steady_state``, ``observable_jacobian``, ``jacobian``:
+    input validation, the steady-state guard, the recompute of untrusted rows)
+    on one C-contiguous float64 array of the data rows, built once; only its
+    free columns are overwritten with θ = exp(u). The measured entries are
+    picked out by precomputed (row, column) indices, so an evaluation costs one
+    model call plus a few array operations. The last ``MEMORY`` points are
+    remembered, and the best optimum is held (:meth:`keep`): the optimizer
+    starts where the time probe evaluated, and the report needs r and J at an
+    optimum the optimizer has already evaluated.
+    """
+
+    def __init__(self, model, X, free_idx, cols, Y, S):
+        self.model = model
+        self.X = np.array(X, dtype=np.float64, order="C")      # owned: written in place
+        self.free = np.asarray(free_idx, dtype=np.intp)
+        self.Y, self.S = Y, S
+        self.threads = 1 if self.X.shape[0] < ONE_THREAD_ROWS else None
+        # residual j is column k of row rows[j] of the observables (is_obs) or of p;
+        # per part: its positions among the residuals, the flat positions of its
+        # entries in O (or P) and of their free-parameter derivatives in the Jacobian
+        is_obs = np.concatenate([np.full(int(mask.sum()), o, dtype=bool) for o, _, mask in cols])
+        rows = np.concatenate([np.flatnonzero(mask) for _, _, mask in cols])
+        ks = np.concatenate([np.full(int(mask.sum()), k, dtype=np.intp) for _, k, mask in cols])
+        n_sym = self.X.shape[1]
+        self.parts = []
+        for here, width in ((is_obs, len(model.observable_names)), (~is_obs, len(model.states))):
+            at = np.flatnonzero(here)
+            entry = rows[at] * width + ks[at]
+            self.parts.append((at if at.size < len(Y) else None, entry,
+                               entry[:, None] * n_sym + self.free[None, :]) if at.size else None)
+        self._P = np.empty((self.X.shape[0], len(model.states))) if self.parts[1] else None
+        self._memory: dict = {}
+        self._kept: dict = {}          # the best optimum so far, never pushed out
+
+    def _slot(self, u) -> list:
+        """[r, J] remembered at u (None where not yet evaluated)."""
+        key = np.asarray(u, dtype=np.float64).tobytes()
+        slot = self._kept.get(key) or self._memory.get(key)
+        if slot is None:
+            while len(self._memory) >= MEMORY:
+                self._memory.pop(next(iter(self._memory)))
+            slot = self._memory[key] = [None, None]
+        return slot
+
+    def keep(self, u) -> None:
+        """Hold on to the point u (the best optimum so far) for the report."""
+        key = np.asarray(u, dtype=np.float64).tobytes()
+        self._kept = {key: self._slot(u)}
+
+    def _set(self, u) -> None:
+        self.X[:, self.free] = np.exp(u)
+
+    def residuals(self, u) -> np.ndarray:
+        slot = self._slot(u)
+        if slot[0] is None:
+            self._set(u)
+            m, X, (obs, states) = self.model, self.X, self.parts
+            if states:
+                P = m.steady_state(X, out=self._P, threads=self.threads)
+                O = m.observables_from(X, P) if obs else None
+            else:
+                P, O = None, m.observables(X, threads=self.threads)
+            pred = self._gather(((obs, O, 1), (states, P, 1)))
+            pred -= self.Y
+            pred /= self.S
+            slot[0] = pred
+        return slot[0].copy()
+
+    def jacobian(self, u) -> np.ndarray:
+        """∂r/∂ln θ of the free parameters from the compiled Jacobians."""
+        slot = self._slot(u)
+        if slot[1] is None:
+            self._set(u)
+            m, X, (obs, states) = self.model, self.X, self.parts
+            Jo = m.observable_jacobian(X, threads=self.threads) if obs else None
+            Jp = m.jacobian(X, threads=self.threads) if states else None
+            D = self._gather(((obs, Jo, 2), (states, Jp, 2)))
+            if not m.info.log_jacobian:
+                D *= np.exp(u)                  # ∂/∂ln θ = θ ∂/∂θ (θ = exp(u) on every row)
+            D /= self.S[:, None]
+            slot[1] = D
+        return slot[1].copy()
+
+    def _gather(self, sources) -> np.ndarray:
+        """The measured entries (which=1) or their free-parameter derivatives
+        (which=2) from each part's array, in residual order."""
+        out = None
+        for part, A, which in sources:
+            if part is None:
+                continue
+            at, picked = part[0], np.take(A, part[which])
+            if at is None:
+                return picked                     # one part holds every residual
+            if out is None:
+                out = np.empty((len(self.Y),) + picked.shape[1:])
+            out[at] = picked
+        return out
+
+
 def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         max_evaluations: int = 2000, max_seconds: float | None = None,
         profile=None) -> dict:
@@ -239,32 +360,12 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         S.append(sig[mask])
     Y, S = np.concatenate(Y), np.concatenate(S)
     m_res, p = len(Y), len(free)
+    if m_res == 0:
+        raise EvaluationError(f"the data have no measured values: every cell of "
+                              f"{', '.join(repr(o) for o in obs_cols)} is empty")
     analytic = _has_jacobian(model, cols)
-
-    def at(u):
-        Xu = X.copy()
-        Xu[:, free_idx] = np.exp(u)
-        return Xu
-
-    def residuals(u):
-        Xu = at(u)
-        P = model.steady_state(Xu)
-        O = model.observables_from(Xu, P) if any(is_obs for is_obs, _, _ in cols) else None
-        pred = np.concatenate([(O if is_obs else P)[mask, k] for is_obs, k, mask in cols])
-        return (pred - Y) / S
-
-    def jacobian(u):
-        """∂r/∂ln θ of the free parameters from the compiled Jacobians."""
-        Xu = at(u)
-        Jp = model.jacobian(Xu) if any(not is_obs for is_obs, _, _ in cols) else None
-        Jo = model.observable_jacobian(Xu) if any(is_obs for is_obs, _, _ in cols) else None
-        rows = []
-        for is_obs, k, mask in cols:
-            D = (Jo if is_obs else Jp)[:, k, :][:, free_idx]
-            if not model.info.log_jacobian:
-                D = D * Xu[:, free_idx]
-            rows.append(D[mask])
-        return np.concatenate(rows) / S[:, None]
+    problem = _Problem(model, X, free_idx, cols, Y, S)
+    residuals, jacobian = problem.residuals, problem.jacobian
 
     lo = np.log([model.info.bounds[q][0] for q in free])
     hi = np.log([model.info.bounds[q][1] for q in free])
@@ -305,6 +406,7 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
                 _refuse_time(starts, time.perf_counter() - t0, budget, "the first start's time")
             if best is None or res.cost < best.cost:
                 best = res
+                problem.keep(res.x)
             bar.update(1)
     u = best.x
     r = residuals(u)
@@ -343,7 +445,8 @@ def fit(model, data, *, values=None, starts: int = 1, seed: int = 0,
         with progress("profiling", total=len(profile), unit="parameter") as bar:
             for q in profile:
                 result["profiles"][q] = profile_interval(residuals, u, lo, hi, free.index(q), scale,
-                                                         result["log_uncertainties"][q], free)
+                                                         result["log_uncertainties"][q], free,
+                                                         jacobian=jacobian if analytic else None)
                 bar.update(1)
     return result
 
@@ -457,7 +560,9 @@ def _spectrum(J: np.ndarray, p: int, tolerance: float = NULL_TOLERANCE):
     """Singular values of J (p of them, zeros added when m < p), the right singular
     vectors as rows, and which singular values count as zero (≤ tolerance · largest)."""
     s_full = np.zeros(p)
-    _, s, Vt = np.linalg.svd(J, full_matrices=True)
+    # only V is needed: U in full would be m × m (32 MB for 2,000 residuals); all
+    # p rows of V^T come back in the thin form whenever m ≥ p
+    _, s, Vt = np.linalg.svd(J, full_matrices=J.shape[0] < p)
     s_full[:len(s)] = s
     smax = float(s_full.max()) if p else 0.0
     small = s_full <= tolerance * smax if smax > 0 else np.ones(p, dtype=bool)
@@ -528,7 +633,8 @@ def _identifiability_message(info: dict, p: int) -> str:
 # ------------------------------------------------------------------ profile likelihood
 
 def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, *,
-                     level: float = 0.95, max_steps: int = 40, refine: int | None = None) -> dict:
+                     level: float = 0.95, max_steps: int = 40, refine: int | None = None,
+                     jacobian=None) -> dict:
     """Profile-likelihood interval of parameter ``k``.
 
     ln θ_k is fixed on a grid walking out from the optimum in both directions
@@ -538,16 +644,20 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
     variance s², as for the standard errors — so on a linear problem the
     interval equals the Wald interval θ̂·exp(±z σ_ln)); each end is refined by
     bisection. An end is open when Δcost stays below the threshold up to the
-    parameter's bound.
+    parameter's bound. ``jacobian`` (∂r/∂u at a full u, e.g. from the compiled
+    Jacobian) is handed to the re-fits; without it they use forward differences.
     """
     from scipy.optimize import least_squares
-    from scipy.stats import chi2, norm
+    from scipy.special import ndtri
     refine = PROFILE_REFINE if refine is None else refine
     name = names[k]
     if scale is None:
         return {"parameter": name, "lower": None, "upper": None, "lower_open": None, "upper_open": None,
                 "note": "no degrees of freedom to scale the threshold (and no sigma columns)"}
-    threshold = 0.5 * float(chi2.ppf(level, 1)) * scale
+    # χ²₁ is the square of a standard normal: its level quantile is z² with z the
+    # (1 + level)/2 normal quantile (common practice; spares importing scipy.stats)
+    z = float(ndtri(0.5 + level / 2))
+    threshold = 0.5 * z * z * scale
     others = [j for j in range(len(u_hat)) if j != k]
     r0 = residuals(u_hat)
     cost0 = 0.5 * float(r0 @ r0)
@@ -563,7 +673,12 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
             def sub(v):
                 full[others] = v
                 return residuals(full)
-            res = least_squares(sub, x0, bounds=(lo_o, hi_o), method="trf", xtol=1e-12,
+
+            def sub_jacobian(v):
+                full[others] = v
+                return jacobian(full)[:, others]
+            res = least_squares(sub, x0, jac=sub_jacobian if jacobian is not None else "2-point",
+                                bounds=(lo_o, hi_o), method="trf", xtol=1e-12,
                                 ftol=1e-12, gtol=1e-12, max_nfev=500)
             full[others] = res.x
         rr = residuals(full)
@@ -606,7 +721,6 @@ def profile_interval(residuals, u_hat, lo, hi, k: int, scale, log_sigma, names, 
         ends[side] = end
     wald = None
     if log_sigma is not None and np.isfinite(log_sigma):
-        z = float(norm.ppf(0.5 + level / 2))
         wald = [math.exp(u_hat[k] - z * log_sigma), math.exp(u_hat[k] + z * log_sigma)]
     out = {"parameter": name, "best": math.exp(u_hat[k]), "level": level,
            "threshold_delta_cost": threshold,
