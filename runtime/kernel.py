@@ -5,6 +5,16 @@ that evaluates rows ``start:stop`` of the C-contiguous float64 array ``X``
 (N, n_inputs) into ``out`` (N, n_outputs) and returns 0, or a non-zero status
 (row index + 1 of the first row it refused). Native row-range functions
 release the GIL, so :class:`Kernel` splits large N across threads.
+
+Kernels built for the runtime also carry a *checked* row-range function
+``checked(X, out, status, start, stop) -> count`` (the fused checks of
+:class:`RowChecks`): while it holds a block of rows in registers anyway it
+tests every symbol against its floor, the row sums of the probability blocks
+and the finiteness of chosen outputs, writes one status byte per row
+(:data:`BAD_SYMBOL`, :data:`NOT_PROBABILITY`, :data:`NOT_FINITE`, or 0) into
+the uint8 array ``status`` and returns how many rows it flagged. Every row is
+evaluated and written, flagged or not; the caller looks at ``status`` only
+when the count is non-zero.
 """
 
 from __future__ import annotations
@@ -12,6 +22,7 @@ from __future__ import annotations
 import hashlib
 import os
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -20,6 +31,28 @@ from .errors import EvaluationError
 # Below this many rows per thread, one thread is faster (thread start-up and
 # cache effects dominate); measured in benches/bench_backends.py.
 MIN_ROWS_PER_THREAD = 2048
+
+#: Status bits of the checked row-range functions (one uint8 per row).
+BAD_SYMBOL = 1        # a symbol is not finite or below its floor: refuse (the runtime names it)
+NOT_PROBABILITY = 2   # a probability block is not finite or its sum misses 1 by more than tol
+NOT_FINITE = 4        # an output of the ``finite`` range is not finite
+
+
+@dataclass(frozen=True)
+class RowChecks:
+    """What a checked kernel tests per row (see the module docstring).
+
+    ``floors``: per input ``(low, inclusive)``: the value must be finite and
+    ``> low`` (``>= low`` when inclusive); ``low = -inf`` with inclusive
+    asks for finiteness only. ``blocks``: ``(start, stop)`` output ranges
+    that are probability vectors: their sum, added left to right, must be
+    finite and within ``tol`` of 1. ``finite``: ``(start, stop)`` outputs that
+    must be finite (``(0, 0)``: none)."""
+
+    floors: tuple
+    blocks: tuple
+    finite: tuple = (0, 0)
+    tol: float = 2.0 ** -40
 
 _POOL: ThreadPoolExecutor | None = None
 # Threads per call when the caller gives none (None: every core). Worker
@@ -54,6 +87,30 @@ def _pool() -> ThreadPoolExecutor:
     return _POOL
 
 
+# Default thread count. Two threads pay only when a row costs enough
+# arithmetic per byte it moves: one core streams about 18 GB/s here, so a
+# body that is memory bound on one core gets nothing from the second and
+# loses the hand-off. Measured here (LLVM, N = 200,000, ns per set, 1 → 2
+# threads): Q3 (126 ops, 256 bytes per set) 8.4 → 9.5, Q4 (580 ops, 640
+# bytes) see benches/bench_public.py; Q5 and up gain 1.2–2× (TECH-NOTES).
+# Rule: split when ops_per_row ≥ OPS_PER_BYTE × bytes per row, and only in
+# pieces of at least MIN_WORK_PER_THREAD ops (thread start-up ≈ 20 µs).
+OPS_PER_BYTE = 1.5
+MIN_WORK_PER_THREAD = 4_000_000
+
+
+def auto_threads(n: int, ops_per_row: int | None, bytes_per_row: int) -> int:
+    """Threads for ``n`` rows of a kernel of ``ops_per_row`` operations that
+    reads and writes ``bytes_per_row`` bytes per row (see the rule above);
+    unknown cost: one thread per :data:`MIN_ROWS_PER_THREAD` rows."""
+    cores = os.cpu_count() or 1
+    if ops_per_row is None:
+        return max(1, min(cores, n // MIN_ROWS_PER_THREAD))
+    if ops_per_row < OPS_PER_BYTE * bytes_per_row:
+        return 1
+    return max(1, min(cores, n // MIN_ROWS_PER_THREAD, (n * ops_per_row) // MIN_WORK_PER_THREAD))
+
+
 def check_threads(threads) -> None:
     """``threads`` is None (all cores) or a positive integer; else EvaluationError."""
     if threads is None:
@@ -82,14 +139,36 @@ class Kernel:
     """
 
     def __init__(self, run, n_inputs: int, n_outputs: int, *, backend: str,
-                 recipe=None, keepalive=None, parallel: bool = True):
+                 recipe=None, keepalive=None, parallel: bool = True, checked=None):
         self.run = run
+        self.checked = checked
         self.n_inputs = n_inputs
         self.n_outputs = n_outputs
         self.backend = backend
         self.recipe = recipe
         self.parallel = parallel
         self._keepalive = keepalive
+        self.ops_per_row = None  # computed IR rows per set, when known: picks the thread count
+        self.native_threads = False  # the compiled code runs its own threads (OpenMP)
+
+    def threads_for(self, n: int, threads: int | None = None) -> int:
+        """Threads a call on ``n`` rows uses: ``threads`` if given (at most
+        one per :data:`MIN_ROWS_PER_THREAD` rows), else :func:`auto_threads`."""
+        if not (self.parallel or self.native_threads):
+            return 1
+        if threads is None:
+            if _DEFAULT_THREADS is None:
+                return auto_threads(n, self.ops_per_row, 8 * (self.n_inputs + self.n_outputs))
+            threads = _DEFAULT_THREADS
+        return max(1, min(threads, n // MIN_ROWS_PER_THREAD))
+
+    def _split(self, func, n: int, threads: int, *args) -> list:
+        """``func(*args, start, stop)`` over ``threads`` contiguous row ranges."""
+        if threads == 1:
+            return [func(*args, 0, n)]
+        bounds = np.linspace(0, n, threads + 1).astype(int)
+        return list(_pool().map(lambda ab: func(*args, int(ab[0]), int(ab[1])),
+                                zip(bounds[:-1], bounds[1:])))
 
     def __call__(self, X: np.ndarray, out: np.ndarray | None = None, *, threads: int | None = None):
         X = np.ascontiguousarray(X, dtype=np.float64)
@@ -101,19 +180,23 @@ class Kernel:
         elif out.shape != (n, self.n_outputs) or out.dtype != np.float64 or not out.flags.c_contiguous:
             raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(n, self.n_outputs)}")
         check_threads(threads)
-        threads = threads or _DEFAULT_THREADS or (os.cpu_count() or 1)
-        threads = max(1, min(threads, n // MIN_ROWS_PER_THREAD)) if self.parallel else 1
-        if threads == 1:
-            status = [self.run(X, out, 0, n)]
-        else:
-            bounds = np.linspace(0, n, threads + 1).astype(int)
-            status = list(_pool().map(lambda ab: self.run(X, out, int(ab[0]), int(ab[1])),
-                                      zip(bounds[:-1], bounds[1:])))
+        status = self._split(self.run, n, self.threads_for(n, threads), X, out)
         bad = [s for s in status if s]
         if bad:
             raise EvaluationError(f"row {min(bad) - 1}: the kernel refused this parameter set "
                                   "(a rate is non-positive or not finite)")
         return out
+
+    def check(self, X: np.ndarray, out: np.ndarray, status: np.ndarray, threads: int) -> int:
+        """The checked row-range function over all rows of ``X`` on ``threads``
+        threads: outputs into ``out``, one status byte per row into ``status``;
+        returns the number of flagged rows. No argument checks: the caller
+        passes a C-contiguous float64 ``X`` (N, n_inputs), ``out`` (N,
+        n_outputs) and uint8 ``status`` (N,), none overlapping."""
+        n = X.shape[0]
+        if threads == 1:
+            return self.checked(X, out, status, 0, n)
+        return sum(self._split(self.checked, n, threads, X, out, status))
 
     def __reduce__(self):
         """Pickle as the recipe (data), rebuilt once per process by :func:`rebuild`."""

@@ -49,11 +49,11 @@ from pathlib import Path
 import numpy as np
 
 from treeflux.runtime import cache
-from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel
+from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel, check_threads
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
-from .c import LANES, block_source, c_identifier, flags_for
+from .c import LANES, block_source, c_identifier, check_source, flags_for
 from .naming import (Interface, probability_blocks, probability_tolerance, py_model_api, py_names)
 
 #: ``-ffp-contract=off``: no fused multiply-adds, so the rounding is the
@@ -105,9 +105,9 @@ static void tf_block_flat(const double *in, double *res)
 {{
     tf_block((const tf_row *)in, (tf_row *)res);
 }}
-'''
+{check_c}'''
     void tf_block_flat(const double *inp, double *res) noexcept nogil
-
+{check_decl}
 
 {valid_fn}cdef Py_ssize_t _span(const double *x, double *y, Py_ssize_t start,
                       Py_ssize_t stop) noexcept nogil:
@@ -183,7 +183,7 @@ def run(const double[:, ::1] x, double[:, ::1] out, Py_ssize_t start, Py_ssize_t
     if status < 0:
         raise MemoryError("no memory for the kernel workspace")
     return status
-"""
+{checked}"""
 
 
 _SETUP = """\
@@ -213,6 +213,90 @@ def embed_example(fn: Function, name: str, interface: Interface | None = None) -
     """``setup.py``: the build recipe of the emitted ``.pyx`` (see its text)."""
     name = c_identifier(name)
     return {"setup.py": _SETUP.format(name=name, flags=list(compile_args(fn)))}
+
+
+_CHECK_C = """
+static void tf_check_flat(const double *in, const double *res, unsigned char *st)
+{
+    tf_check((const double (*)[TF_LANES])in, (const double (*)[TF_LANES])res, st);
+}
+"""
+
+_CHECK_DECL = "    void tf_check_flat(const double *inp, const double *res, unsigned char *st) noexcept nogil\n"
+
+_CHECKED = """
+cdef Py_ssize_t _span_checked(const double *x, double *y, unsigned char *s, Py_ssize_t start,
+                              Py_ssize_t stop) noexcept nogil:
+    # Rows start..stop-1 with the fused checks: the number of flagged rows,
+    # or -1 (no memory for the workspace).
+    cdef char *raw = <char *> malloc({n_words} * sizeof(double) + 64)
+    if raw == NULL:
+        return -1
+    cdef double *w = <double *> ((<uintptr_t> raw + 63) & ~(<uintptr_t> 63))
+    cdef unsigned char st[{lanes}]
+    cdef const double *xr
+    cdef double *yr
+    cdef Py_ssize_t r0 = start, count = 0
+    cdef int b, j, n
+    while r0 < stop:
+        n = <int> (stop - r0) if stop - r0 < {lanes} else {lanes}
+        for b in range({lanes}):
+            xr = x + (r0 + (b if b < n else n - 1)) * {n_in}
+            for j in range({n_in}):
+                w[j * {lanes} + b] = xr[j]
+        tf_block_flat(w, w + {res_at})
+        tf_check_flat(w, w + {res_at}, st)
+        for b in range(n):
+            yr = y + (r0 + b) * {n_out}
+{stores}            s[r0 + b] = st[b]
+            if st[b] != 0:
+                count += 1
+        r0 += {lanes}
+    free(raw)
+    return count
+
+
+def run_checked(const double[:, ::1] x, double[:, ::1] out, unsigned char[::1] status,
+                Py_ssize_t start, Py_ssize_t stop, int threads=1):
+    # Rows start..stop-1 with the fused checks (one status byte per row);
+    # returns the number of flagged rows.
+    if x.shape[1] != {n_in} or out.shape[1] != {n_out} or x.shape[0] != out.shape[0] \\
+            or status.shape[0] != x.shape[0]:
+        raise ValueError("shape mismatch: x must be (N, {n_in}), out (N, {n_out}), status (N,)")
+    if not 0 <= start <= stop <= x.shape[0]:
+        raise ValueError("row range out of bounds")
+    if stop == start:
+        return 0
+    cdef const double *xp = &x[0, 0] if {n_in} > 0 else NULL
+    cdef double *yp = &out[0, 0]
+    cdef unsigned char *sp = &status[0]
+    cdef Py_ssize_t n_blocks = (stop - start + {lanes_less}) // {lanes}
+    cdef Py_ssize_t t, lo, hi, count = 0
+    cdef Py_ssize_t *found
+    if threads > n_blocks:
+        threads = <int> n_blocks
+    if threads > 1:
+        found = <Py_ssize_t *> malloc(threads * sizeof(Py_ssize_t))
+        if found == NULL:
+            raise MemoryError("no memory for the thread status table")
+        with nogil:
+            for t in prange(threads, schedule="static", num_threads=threads):
+                lo = start + (t * n_blocks // threads) * {lanes}
+                hi = start + ((t + 1) * n_blocks // threads) * {lanes}
+                found[t] = _span_checked(xp, yp, sp, lo, hi if hi < stop else stop)
+        for t in range(threads):
+            if found[t] < 0:
+                count = -1
+                break
+            count += found[t]
+        free(found)
+    else:
+        with nogil:
+            count = _span_checked(xp, yp, sp, start, stop)
+    if count < 0:
+        raise MemoryError("no memory for the kernel workspace")
+    return count
+"""
 
 
 def _names(iface: Interface | None) -> str:
@@ -261,7 +345,8 @@ def _valid_function(n_in: int, n_out: int, n_res: int, iface: Interface) -> str:
     return "\n".join(lines)
 
 
-def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
+def emit(fn: Function, *, name: str, interface: Interface | None = None,
+         checks=None) -> dict[str, str]:
     """The ``.pyx`` source of ``fn``: ``{"<name>.pyx": text}``.
 
     Deterministic; inputs, outputs and temporaries are offsets into the
@@ -270,7 +355,12 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     ``evaluate``/``steady_state``/``observables``, and the last
     ``interface.checks`` outputs of ``fn`` are rates checked per row like the
     results. The text ends with a line holding the SHA-256 of everything
-    above it."""
+    above it. With ``checks`` (runtime kernels only, no interface) the module
+    also defines ``run_checked(x, out, status, start, stop, threads=1)``
+    (the fused checks of :class:`~treeflux.runtime.kernel.RowChecks`;
+    returns the number of flagged rows)."""
+    if checks is not None and interface is not None:
+        raise ValueError("checks are for runtime kernels, which carry no interface")
     name = c_identifier(name)
     n_in, n_out = fn.n_inputs, len(fn.outputs) - (interface.checks if interface else 0)
     if n_out <= 0:
@@ -280,7 +370,11 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     stores = (f"            for j in range({n_out}):\n"
               f"                yr[j] = w[({n_in} + j) * {LANES} + b]\n")
     checked = interface is not None
-    text = _PYX.format(name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),
+    fields = dict(n_in=n_in, n_out=n_out, lanes=LANES, res_at=n_in * LANES, lanes_less=LANES - 1,
+                  n_words=(n_in + n_res) * LANES, stores=stores)
+    text = _PYX.format(check_c="" if checks is None else check_source(checks) + _CHECK_C,
+                       check_decl="" if checks is None else _CHECK_DECL,
+                       checked="" if checks is None else _CHECKED.format(**fields),name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),
                        n_res=n_res, n_slots_dim=max(1, n_slots), block=block,
                        res_at=n_in * LANES, lanes_less=LANES - 1,
                        n_words=(n_in + n_res) * LANES, stores=stores,
@@ -412,19 +506,29 @@ class CythonKernel(Kernel):
         def run(X, out, start, stop):
             return module.run(X, out, start, stop, getattr(local, "threads", 1))
 
+        checked = None
+        if hasattr(module, "run_checked"):
+            def checked(X, out, status, start, stop):
+                return module.run_checked(X, out, status, start, stop, 1)
+
         super().__init__(run, n_inputs, n_outputs, backend="cython", recipe=recipe,
-                         keepalive=module, parallel=not openmp)
+                         keepalive=module, parallel=not openmp, checked=checked)
+        self.native_threads = openmp  # threads_for's rule, then one prange over that many
 
     def __call__(self, X, out=None, *, threads=None):
         if not self.openmp:
             return super().__call__(X, out, threads=threads)
-        n = np.shape(X)[0] if np.ndim(X) == 2 else 0
-        want = threads or (os.cpu_count() or 1)
-        self._local.threads = max(1, min(want, n // MIN_ROWS_PER_THREAD))
+        check_threads(threads)
+        self._local.threads = self.threads_for(np.shape(X)[0] if np.ndim(X) == 2 else 0, threads)
         try:
             return super().__call__(X, out, threads=1)
         finally:
             self._local.threads = 1
+
+    def check(self, X, out, status, threads: int) -> int:
+        if not self.openmp or threads == 1:
+            return super().check(X, out, status, threads)
+        return self.module.run_checked(X, out, status, 0, X.shape[0], threads)
 
 
 def build_from_source(pyx: str, n_inputs: int, n_outputs: int,
@@ -444,9 +548,10 @@ def build_from_source(pyx: str, n_inputs: int, n_outputs: int,
                         recipe=(build_from_source, (pyx, n_inputs, n_outputs, tuple(args))))
 
 
-def build(fn: Function, *, name: str = "treeflux_model") -> CythonKernel:
-    """Emit ``fn`` as Cython, build it through the cache and load it in-process."""
-    (pyx,) = emit(fn, name=name).values()
+def build(fn: Function, *, name: str = "treeflux_model", checks=None) -> CythonKernel:
+    """Emit ``fn`` as Cython (with ``run_checked`` for ``checks``), build it
+    through the cache and load it in-process."""
+    (pyx,) = emit(fn, name=name, checks=checks).values()
     with progress("native compilation (Cython)", total=1, unit="module") as bar:
         kernel = build_from_source(pyx, fn.n_inputs, len(fn.outputs), compile_args(fn))
         bar.update(1)

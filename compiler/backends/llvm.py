@@ -70,6 +70,7 @@ VEC = f"<{LANES} x double>"
 CHUNK_ROWS = 15_000
 MAX_ROWS = 40_000
 ENTRY = "treeflux_rows"
+CHECKED_ENTRY = "treeflux_checked"
 SPEED_LEVEL = 2  # O3 measured the same here (Q3–Q5: speed and compile time within noise)
 
 _INTRINSIC = {"exp": "llvm.exp.v8f64", "log": "llvm.log.v8f64", "sqrt": "llvm.sqrt.v8f64",
@@ -353,8 +354,8 @@ def _chunks(fn: Function) -> tuple[list[str], set[str], int, int]:
     return text, uses, len(chunks), n_slots
 
 
-_DRIVER = """\
-define internal void @tf_block(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y) \
+_BLOCK = """\
+define internal void @{block}(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y{sparam}) \
 nounwind noinline {{
 entry:
   %xc = alloca [{n_cols_in} x {vec}], align 64
@@ -362,10 +363,14 @@ entry:
   %t = alloca [{n_slots} x {vec}], align 64
 {gather}
 {calls}
+{checks}
 {scatter}
   ret void
 }}
 
+"""
+
+_DRIVER = """\
 define i32 @{entry}(ptr noalias nocapture readonly %X, ptr noalias nocapture %Y, i64 %start, \
 i64 %stop) nounwind {{
 entry:
@@ -481,7 +486,146 @@ refuse_tail:
 """
 
 
-def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, str]:
+def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
+    """The fused row checks of one block (see :class:`~treeflux.runtime.kernel.RowChecks`):
+    input column vectors in ``%xc``, output column vectors in ``%yc``; eight
+    status bytes into ``%s``. Comparisons are ordered (false on NaN), so a
+    NaN fails every test; sums fold left to right like the runtime's."""
+    vec, mask = VEC, f"<{LANES} x i1>"
+    inf, true = _splat(math.inf), "<" + ", ".join(["i1 true"] * LANES) + ">"
+    out: list[str] = []
+
+    def col(ptr: str, k: int, tag: str) -> str:
+        out.append(f"  %{tag}{k}.p = getelementptr inbounds {vec}, ptr %{ptr}, i64 {k}")
+        out.append(f"  %{tag}{k} = load {vec}, ptr %{tag}{k}.p, align 64")
+        return f"%{tag}{k}"
+
+    def finite(v: str, tag: str) -> str:
+        out.append(f"  %{tag}.a = call {vec} @llvm.fabs.v8f64({vec} {v})")
+        out.append(f"  %{tag} = fcmp olt {vec} %{tag}.a, {inf}")
+        return f"%{tag}"
+
+    def conj(acc: str, ok: str, tag: str) -> str:
+        out.append(f"  %{tag} = and {mask} {acc}, {ok}")
+        return f"%{tag}"
+
+    ok_in = true
+    for j, (low, inclusive) in enumerate(checks.floors):
+        v = col("xc", j, "kx")
+        if low == -math.inf:
+            ok = finite(v, f"kf{j}")
+        else:  # above the floor and below +inf: finite (ordered: false on NaN)
+            cmp = "oge" if inclusive else "ogt"
+            out.append(f"  %kl{j} = fcmp {cmp} {vec} {v}, {_splat(float(low))}")
+            out.append(f"  %ku{j} = fcmp olt {vec} {v}, {inf}")
+            ok = conj(f"%kl{j}", f"%ku{j}", f"ko{j}")
+        ok_in = ok if ok_in == true else conj(ok_in, ok, f"ki{j}")
+    ok_p = true
+    for b, (lo, hi) in enumerate(checks.blocks):
+        acc = col("yc", lo, f"kp{b}.")
+        for k in range(lo + 1, hi):
+            v = col("yc", k, f"kp{b}.")
+            out.append(f"  %ks{b}.{k} = fadd {vec} {acc}, {v}")
+            acc = f"%ks{b}.{k}"
+        out.append(f"  %kd{b} = fsub {vec} {acc}, {_splat(1.0)}")
+        out.append(f"  %kd{b}.a = call {vec} @llvm.fabs.v8f64({vec} %kd{b})")
+        out.append(f"  %kt{b} = fcmp ole {vec} %kd{b}.a, {_splat(float(checks.tol))}")
+        ok_p = f"%kt{b}" if ok_p == true else conj(ok_p, f"%kt{b}", f"kb{b}")
+    ok_f = true
+    lo, hi = checks.finite
+    for k in range(lo, hi):
+        ok = finite(col("yc", k, "kq"), f"kg{k}")
+        ok_f = ok if ok_f == true else conj(ok_f, ok, f"kh{k}")
+    status = "zeroinitializer"
+    for bit, ok in ((1, ok_in), (2, ok_p), (4, ok_f)):
+        if ok == true:
+            continue
+        one = "<" + ", ".join([f"i8 {bit}"] * LANES) + ">"
+        out.append(f"  %kz{bit} = select {mask} {ok}, <{LANES} x i8> zeroinitializer, <{LANES} x i8> {one}")
+        out.append(f"  %kw{bit} = or <{LANES} x i8> {status}, %kz{bit}")
+        status = f"%kw{bit}"
+    out.append(f"  store <{LANES} x i8> {status}, ptr %s, align 1")
+    return out
+
+
+_CHECKED_DRIVER = """\
+define i64 @{entry}(ptr noalias nocapture readonly %X, ptr noalias nocapture %Y, \
+ptr noalias nocapture %S, i64 %start, i64 %stop) nounwind {{
+entry:
+  %xb = alloca [{n_block_in} x double], align 64
+  %yb = alloca [{n_block_out} x double], align 64
+  %sb = alloca [{lanes} x i8], align 8
+  %n = sub i64 %stop, %start
+  %nfull = and i64 %n, -{lanes}
+  %end = add i64 %start, %nfull
+  %any = icmp slt i64 %start, %end
+  br i1 %any, label %body, label %tail
+body:
+  %i = phi i64 [%start, %entry], [%i1, %body]
+  %cnt = phi i64 [0, %entry], [%cnt1, %body]
+  %ix = mul i64 %i, {n_in}
+  %iy = mul i64 %i, {n_out}
+  %px = getelementptr inbounds double, ptr %X, i64 %ix
+  %py = getelementptr inbounds double, ptr %Y, i64 %iy
+  %ps = getelementptr inbounds i8, ptr %S, i64 %i
+  call void @tf_block_checked(ptr %px, ptr %py, ptr %ps)
+  %sv = load <{lanes} x i8>, ptr %ps, align 1
+  %nz = icmp ne <{lanes} x i8> %sv, zeroinitializer
+  %nzb = bitcast <{lanes} x i1> %nz to i{lanes}
+  %pc = call i{lanes} @llvm.ctpop.i{lanes}(i{lanes} %nzb)
+  %pc64 = zext i{lanes} %pc to i64
+  %cnt1 = add i64 %cnt, %pc64
+  %i1 = add i64 %i, {lanes}
+  %again = icmp slt i64 %i1, %end
+  br i1 %again, label %body, label %tail
+tail:
+  %cntb = phi i64 [0, %entry], [%cnt1, %body]
+  %rem = sub i64 %stop, %end
+  %has = icmp sgt i64 %rem, 0
+  br i1 %has, label %pad, label %exit
+pad:
+  %rx = mul i64 %rem, {n_in}
+  br label %fill
+fill:
+  %f = phi i64 [%rx, %pad], [%f1, %fill]
+  %pf = getelementptr inbounds double, ptr %xb, i64 %f
+  store double 1.0, ptr %pf, align 8
+  %f1 = add i64 %f, 1
+  %filling = icmp slt i64 %f1, {n_block_in_1}
+  br i1 %filling, label %fill, label %copy
+copy:
+  %tx = mul i64 %end, {n_in}
+  %ptx = getelementptr inbounds double, ptr %X, i64 %tx
+  %bx = mul i64 %rx, 8
+  call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
+  call void @tf_block_checked(ptr %xb, ptr %yb, ptr %sb)
+  %ty = mul i64 %end, {n_out}
+  %pty = getelementptr inbounds double, ptr %Y, i64 %ty
+  %by = mul i64 %rem, {n_out_bytes}
+  call void @llvm.memcpy.p0.p0.i64(ptr align 8 %pty, ptr align 64 %yb, i64 %by, i1 false)
+  %pts = getelementptr inbounds i8, ptr %S, i64 %end
+  call void @llvm.memcpy.p0.p0.i64(ptr align 1 %pts, ptr align 8 %sb, i64 %rem, i1 false)
+  %st = load <{lanes} x i8>, ptr %sb, align 8
+  %stz = icmp ne <{lanes} x i8> %st, zeroinitializer
+  %remv.0 = insertelement <{lanes} x i64> poison, i64 %rem, i32 0
+  %remv = shufflevector <{lanes} x i64> %remv.0, <{lanes} x i64> poison, <{lanes} x i32> zeroinitializer
+  %real = icmp ult <{lanes} x i64> <{lane_ids}>, %remv
+  %stm = and <{lanes} x i1> %stz, %real
+  %stb = bitcast <{lanes} x i1> %stm to i{lanes}
+  %tc = call i{lanes} @llvm.ctpop.i{lanes}(i{lanes} %stb)
+  %tc64 = zext i{lanes} %tc to i64
+  %cntt = add i64 %cntb, %tc64
+  br label %exit
+exit:
+  %c = phi i64 [%cntb, %tail], [%cntt, %copy]
+  ret i64 %c
+}}
+
+declare i{lanes} @llvm.ctpop.i{lanes}(i{lanes})
+"""
+
+
+def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) -> dict[str, str]:
     """LLVM IR text of the row-range function of ``fn`` (see the module docstring).
 
     Parameters
@@ -493,6 +637,11 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, st
     check_inputs : bool, optional
         Refuse rows with an input that is not positive and finite (the status
         is row + 1 of the first such row).
+    checks : RowChecks, optional
+        Also define the checked entry ``i64 @treeflux_checked(ptr X, ptr out,
+        ptr status, i64 start, i64 stop)`` (the fused checks of
+        :class:`~treeflux.runtime.kernel.RowChecks`; returns the number of
+        flagged rows).
 
     Returns
     -------
@@ -511,8 +660,20 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, st
     parts, uses, n_chunks, n_slots = _chunks(fn)
     check = check_inputs and n_in > 0
     calls = "\n".join(f"  call void @tf_part{c}(ptr %xc, ptr %t, ptr %yc)" for c in range(n_chunks))
-    driver = _DRIVER.format(
-        calls=calls, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
+    block = dict(calls=calls, vec=VEC, n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1),
+                 n_cols_out=max(n_out, 1), gather="\n".join(_gather(n_in)),
+                 scatter="\n".join(_scatter(n_out)))
+    driver = _BLOCK.format(block="tf_block", sparam="", checks="", **block)
+    if checks is not None:
+        driver += _BLOCK.format(block="tf_block_checked", sparam=", ptr noalias nocapture writeonly %s",
+                                checks="\n".join(_check_lines(checks, n_in, n_out)), **block)
+        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES,
+                                         lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
+                                         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
+                                         n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
+        uses |= {"llvm.fabs.v8f64"}
+    driver += _DRIVER.format(
+        entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
         gather="\n".join(_gather(n_in)), scatter="\n".join(_scatter(n_out)),
         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
@@ -586,6 +747,7 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
         engine = llvm.create_mcjit_compiler(mod, tm)  # takes ownership of tm
         engine.finalize_object()
         address = engine.get_function_address(ENTRY)
+        checked_address = engine.get_function_address(CHECKED_ENTRY) if CHECKED_ENTRY in text else 0
     proto = ctypes.CFUNCTYPE(ctypes.c_int32, ctypes.c_void_p, ctypes.c_void_p,
                              ctypes.c_int64, ctypes.c_int64)
     cfunc = proto(address)
@@ -593,14 +755,23 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
     def run(X, out, start, stop):
         return cfunc(X.ctypes.data, out.ctypes.data, int(start), int(stop))
 
+    checked = cchecked = None
+    if checked_address:
+        cchecked = ctypes.CFUNCTYPE(ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p,
+                                    ctypes.c_int64, ctypes.c_int64)(checked_address)
+
+        def checked(X, out, status, start, stop):
+            return cchecked(X.ctypes.data, out.ctypes.data, status.ctypes.data, start, stop)
+
     return Kernel(run, n_inputs, n_outputs, backend="llvm",
                   recipe=(compile_text, (text, n_inputs, n_outputs)),
-                  keepalive=(engine, cfunc))
+                  keepalive=(engine, cfunc, cchecked), checked=checked)
 
 
-def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False) -> Kernel:
+def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False,
+          checks=None) -> Kernel:
     """Emit ``fn`` (see :func:`emit`) and JIT-compile it in this process."""
-    (text,) = emit(fn, name=name, check_inputs=check_inputs).values()
+    (text,) = emit(fn, name=name, check_inputs=check_inputs, checks=checks).values()
     with progress("native compilation (LLVM)", total=1, unit="module") as bar:
         kernel = compile_text(text, fn.n_inputs, len(fn.outputs))
         bar.update(1)
