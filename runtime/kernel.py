@@ -19,8 +19,10 @@ when the count is non-zero.
 
 from __future__ import annotations
 
+import ctypes
 import hashlib
 import os
+import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
@@ -87,28 +89,30 @@ def _pool() -> ThreadPoolExecutor:
     return _POOL
 
 
-# Default thread count. Two threads pay only when a row costs enough
-# arithmetic per byte it moves: one core streams about 18 GB/s here, so a
-# body that is memory bound on one core gets nothing from the second and
-# loses the hand-off. Measured here (LLVM, N = 200,000, ns per set, 1 → 2
-# threads): Q3 (126 ops, 256 bytes per set) 8.4 → 9.5, Q4 (580 ops, 640
-# bytes) see benches/bench_public.py; Q5 and up gain 1.2–2× (TECH-NOTES).
-# Rule: split when ops_per_row ≥ OPS_PER_BYTE × bytes per row, and only in
-# pieces of at least MIN_WORK_PER_THREAD ops (thread start-up ≈ 20 µs).
-OPS_PER_BYTE = 1.5
-MIN_WORK_PER_THREAD = 4_000_000
+# Default thread count (threads=None). A second thread pays only when a
+# row's arithmetic outweighs its memory traffic, and that depends on the
+# machine as much as on the model: Q3 with LLVM at N = 200,000 ran 8.5 ns per
+# set on one thread and slower on two on one 2-core AVX-512 machine (memory
+# bound, TECH-NOTES), while on another 2-core Xeon it ran 32 ns on one and
+# 16 ns on two (compute bound); Q4 and Q5 gained nothing there with the other
+# core busy. No fixed rule is right on both, so each kernel measures itself:
+# calls of at least 2 × MIN_ROWS_PER_THREAD rows are timed, the first runs on
+# one thread, the next one large enough (≥ MIN_SPLIT_SECONDS on one thread)
+# on every core it may use, and from then on the split is used only if its
+# best time per row beat one thread's best by SPLIT_GAIN. So at most one call
+# is slower than one thread would have been, and none after it. Threads never
+# change the bits (rows are independent).
+MIN_SPLIT_SECONDS = 200e-6
+SPLIT_GAIN = 0.9
+_CORES = max(1, os.cpu_count() or 1)
 
 
-def auto_threads(n: int, ops_per_row: int | None, bytes_per_row: int) -> int:
-    """Threads for ``n`` rows of a kernel of ``ops_per_row`` operations that
-    reads and writes ``bytes_per_row`` bytes per row (see the rule above);
-    unknown cost: one thread per :data:`MIN_ROWS_PER_THREAD` rows."""
-    cores = os.cpu_count() or 1
-    if ops_per_row is None:
-        return max(1, min(cores, n // MIN_ROWS_PER_THREAD))
-    if ops_per_row < OPS_PER_BYTE * bytes_per_row:
-        return 1
-    return max(1, min(cores, n // MIN_ROWS_PER_THREAD, (n * ops_per_row) // MIN_WORK_PER_THREAD))
+def data_address(a: np.ndarray) -> int:
+    """The data address of a non-empty C-contiguous array, for a native call
+    (``ctypes.addressof`` of a writable buffer costs a third of ``a.ctypes.data``)."""
+    if a.flags.writeable:
+        return ctypes.addressof(ctypes.c_char.from_buffer(a))
+    return a.ctypes.data
 
 
 def check_threads(threads) -> None:
@@ -148,19 +152,35 @@ class Kernel:
         self.recipe = recipe
         self.parallel = parallel
         self._keepalive = keepalive
-        self.ops_per_row = None  # computed IR rows per set, when known: picks the thread count
         self.native_threads = False  # the compiled code runs its own threads (OpenMP)
+        self.seconds_per_row: dict = {}  # threads → best time per row seen (the thread rule)
 
     def threads_for(self, n: int, threads: int | None = None) -> int:
         """Threads a call on ``n`` rows uses: ``threads`` if given (at most
-        one per :data:`MIN_ROWS_PER_THREAD` rows), else :func:`auto_threads`."""
-        if not (self.parallel or self.native_threads):
+        one per :data:`MIN_ROWS_PER_THREAD` rows), else the measured rule
+        above."""
+        if n < 2 * MIN_ROWS_PER_THREAD or not (self.parallel or self.native_threads):
             return 1
-        if threads is None:
-            if _DEFAULT_THREADS is None:
-                return auto_threads(n, self.ops_per_row, 8 * (self.n_inputs + self.n_outputs))
-            threads = _DEFAULT_THREADS
-        return max(1, min(threads, n // MIN_ROWS_PER_THREAD))
+        most = min(_CORES, n // MIN_ROWS_PER_THREAD)
+        if threads is None and _DEFAULT_THREADS is None:
+            one = self.seconds_per_row.get(1)
+            if one is None or n * one < MIN_SPLIT_SECONDS:
+                return 1
+            split = self.seconds_per_row.get(most)
+            return most if split is None or split < SPLIT_GAIN * one else 1
+        return max(1, min(threads or _DEFAULT_THREADS, most))
+
+    def _timed(self, func, n: int, threads: int, *args):
+        """``self._split(func, ...)``, timed into :attr:`seconds_per_row` for large calls."""
+        if n < 2 * MIN_ROWS_PER_THREAD:
+            return self._split(func, n, threads, *args)
+        t0 = time.perf_counter()
+        result = self._split(func, n, threads, *args)
+        per_row = (time.perf_counter() - t0) / n
+        best = self.seconds_per_row.get(threads)
+        if best is None or per_row < best:
+            self.seconds_per_row[threads] = per_row
+        return result
 
     def _split(self, func, n: int, threads: int, *args) -> list:
         """``func(*args, start, stop)`` over ``threads`` contiguous row ranges."""
@@ -180,7 +200,7 @@ class Kernel:
         elif out.shape != (n, self.n_outputs) or out.dtype != np.float64 or not out.flags.c_contiguous:
             raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(n, self.n_outputs)}")
         check_threads(threads)
-        status = self._split(self.run, n, self.threads_for(n, threads), X, out)
+        status = self._timed(self.run, n, self.threads_for(n, threads), X, out)
         bad = [s for s in status if s]
         if bad:
             raise EvaluationError(f"row {min(bad) - 1}: the kernel refused this parameter set "
@@ -194,9 +214,9 @@ class Kernel:
         passes a C-contiguous float64 ``X`` (N, n_inputs), ``out`` (N,
         n_outputs) and uint8 ``status`` (N,), none overlapping."""
         n = X.shape[0]
-        if threads == 1:
-            return self.checked(X, out, status, 0, n)
-        return sum(self._split(self.checked, n, threads, X, out, status))
+        if n < 2 * MIN_ROWS_PER_THREAD:
+            return self.checked(X, out, status, 0, n) if n else 0
+        return sum(self._timed(self.checked, n, threads, X, out, status))
 
     def __reduce__(self):
         """Pickle as the recipe (data), rebuilt once per process by :func:`rebuild`."""

@@ -81,8 +81,6 @@ class CompiledModel:
         self.plan = None  # EliminationPlan of the looped numeric path, built on first use
         self._zero_plans: dict = {}  # plans for rows whose zero rates remove edges
         self.profile = profile or {}
-        if kernel is not None and info.kernel_ops:
-            kernel.ops_per_row = info.kernel_ops
         # The fused path: the kernel checks every row itself (see _guarded).
         # Signed-rate models keep the checks in Python (their rates are
         # checked from the label kernel before the steady-state kernel runs).

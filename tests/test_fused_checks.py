@@ -14,6 +14,7 @@ recomputed rows are checked against an mpmath LU solve at 50 digits
 
 from __future__ import annotations
 
+import os
 import pickle
 
 import numpy as np
@@ -24,7 +25,7 @@ from treeflux.compiler.pipeline import compile_scheme
 from treeflux.runtime import cache
 from treeflux.runtime.errors import EvaluationError
 from treeflux.runtime.model import CompiledModel
-from treeflux.runtime.kernel import BAD_SYMBOL, NOT_FINITE, NOT_PROBABILITY, auto_threads
+from treeflux.runtime.kernel import BAD_SYMBOL, NOT_FINITE, NOT_PROBABILITY, Kernel
 
 from .schemes import mp_steady_state
 
@@ -352,12 +353,29 @@ def test_input_derivatives_refusal_same_message(model_file):
 
 # ------------------------------------------------------------------ rules around the kernels
 
-def test_thread_rule_never_splits_memory_bound_kernels():
-    # Q3-like: 126 operations over 256 bytes per set: one thread at any N
-    assert auto_threads(200_000, 126, 256) == 1
-    # a body of 3,000 operations per 1,500 bytes: split once the work pays
-    assert auto_threads(200_000, 3_000, 1_500) >= min(2, __import__("os").cpu_count() or 1)
-    assert auto_threads(1_024, 3_000, 1_500) == 1
+def test_thread_rule_learns_when_a_split_pays():
+    """Default threads: one until one thread's time per row is known, then the
+    split once, then the split only if it was faster (see runtime/kernel.py)."""
+    if (os.cpu_count() or 1) < 2:
+        pytest.skip("one core: nothing to split")
+    k = Kernel(lambda X, out, a, b: 0, 3, 2, backend="python-test")
+    n = 200_000
+    assert k.threads_for(n) == 1                       # nothing measured yet
+    k.seconds_per_row[1] = 30e-9
+    assert k.threads_for(n) == 2                       # try the split once
+    k.seconds_per_row[2] = 29e-9                       # not 10% faster: stay on one
+    assert k.threads_for(n) == 1
+    k.seconds_per_row[2] = 16e-9
+    assert k.threads_for(n) == 2
+    assert k.threads_for(1_024) == 1                   # small calls never split
+    assert k.threads_for(n, 1) == 1 and k.threads_for(n, 2) == 2
+    k.seconds_per_row[1] = 1e-12                       # 0.2 ms of work at most: not worth a thread
+    assert k.threads_for(n) == 1
+    # calls record their own times
+    fresh = Kernel(lambda X, out, a, b: 0, 3, 2, backend="python-test")
+    fresh(np.ones((10_000, 3)), threads=2)
+    fresh(np.ones((10_000, 3)), threads=1)
+    assert set(fresh.seconds_per_row) == {1, 2}
 
 
 def test_cache_keys_carry_the_kernel_abi(monkeypatch):

@@ -42,7 +42,7 @@ import heapq
 import re
 from fractions import Fraction
 
-from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.kernel import Kernel, data_address
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
@@ -525,9 +525,22 @@ def check_source(checks) -> str:
     lines = ["static void tf_check(const double (*restrict in)[TF_LANES], "
              "const double (*restrict res)[TF_LANES], unsigned char *restrict st)",
              "{", "    int b, k;", "    double s[TF_LANES];", "    unsigned char bad[TF_LANES];",
-             "    (void)k; (void)s;",
+             "    unsigned long long top[TF_LANES];", "    (void)k; (void)s; (void)top;",
              "    for (b = 0; b < TF_LANES; b++) bad[b] = 0;"]
     for a, z, low, inclusive in floor_runs(checks.floors):
+        if low == 0 and not inclusive:
+            # x > 0 and finite <=> its bits are 1 .. 0x7FEFFFFFFFFFFFFF (NaN, +-inf,
+            # +-0 and negatives are not): two integer operations per value
+            lines.append("    for (b = 0; b < TF_LANES; b++) top[b] = 0;")
+            lines.append(f"    for (k = {a}; k < {z}; k++)")
+            lines.append("        for (b = 0; b < TF_LANES; b++) {")
+            lines.append("            unsigned long long u;")
+            lines.append("            memcpy(&u, &in[k][b], sizeof u);")
+            lines.append("            u -= 1;")
+            lines.append("            top[b] = u > top[b] ? u : top[b];")
+            lines.append("        }")
+            lines.append("    for (b = 0; b < TF_LANES; b++) bad[b] |= top[b] > 0x7FEFFFFFFFFFFFFEULL;")
+            continue
         if low == float("-inf"):
             test = "fabs(in[k][b]) < HUGE_VAL"
         else:
@@ -546,7 +559,7 @@ def check_source(checks) -> str:
         lines.append(f"    for (k = {a}; k < {z}; k++)")
         lines.append("        for (b = 0; b < TF_LANES; b++) bad[b] |= (!(fabs(res[k][b]) < HUGE_VAL)) << 2;")
     lines += ["    for (b = 0; b < TF_LANES; b++) st[b] = bad[b];", "}", ""]
-    return "\n".join(lines) + "\n"
+    return "#include <string.h>\n" + "\n".join(lines) + "\n"
 
 
 _CHECKED_DRIVER = """\
@@ -797,7 +810,7 @@ def build_from_source(sources: dict[str, str], name: str, n_inputs: int, n_outpu
         cfunc.restype = ctypes.c_long
 
         def checked(X, out, status, start, stop):
-            return cfunc(X.ctypes.data, out.ctypes.data, status.ctypes.data, start, stop)
+            return cfunc(data_address(X), data_address(out), data_address(status), start, stop)
 
     recipe = (build_from_source, (dict(sources), name, n_inputs, n_outputs, tuple(flags)))
     kernel = Kernel(run, n_inputs, n_outputs, backend="c", recipe=recipe, keepalive=lib,

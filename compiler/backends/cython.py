@@ -49,7 +49,7 @@ from pathlib import Path
 import numpy as np
 
 from treeflux.runtime import cache
-from treeflux.runtime.kernel import MIN_ROWS_PER_THREAD, Kernel, check_threads
+from treeflux.runtime.kernel import Kernel
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
@@ -509,26 +509,21 @@ class CythonKernel(Kernel):
         checked = None
         if hasattr(module, "run_checked"):
             def checked(X, out, status, start, stop):
-                return module.run_checked(X, out, status, start, stop, 1)
+                return module.run_checked(X, out, status, start, stop, getattr(local, "threads", 1))
 
         super().__init__(run, n_inputs, n_outputs, backend="cython", recipe=recipe,
                          keepalive=module, parallel=not openmp, checked=checked)
         self.native_threads = openmp  # threads_for's rule, then one prange over that many
 
-    def __call__(self, X, out=None, *, threads=None):
-        if not self.openmp:
-            return super().__call__(X, out, threads=threads)
-        check_threads(threads)
-        self._local.threads = self.threads_for(np.shape(X)[0] if np.ndim(X) == 2 else 0, threads)
+    def _split(self, func, n: int, threads: int, *args) -> list:
+        """With OpenMP: one call whose prange runs ``threads`` threads."""
+        if not self.openmp or threads == 1:
+            return super()._split(func, n, threads, *args)
+        self._local.threads = threads
         try:
-            return super().__call__(X, out, threads=1)
+            return [func(*args, 0, n)]
         finally:
             self._local.threads = 1
-
-    def check(self, X, out, status, threads: int) -> int:
-        if not self.openmp or threads == 1:
-            return super().check(X, out, status, threads)
-        return self.module.run_checked(X, out, status, 0, X.shape[0], threads)
 
 
 def build_from_source(pyx: str, n_inputs: int, n_outputs: int,

@@ -54,7 +54,7 @@ import math
 import struct
 import threading
 
-from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.kernel import Kernel, data_address
 from treeflux.runtime.progress import progress
 
 from ..errors import TooLargeError
@@ -75,7 +75,8 @@ SPEED_LEVEL = 2  # O3 measured the same here (Q3–Q5: speed and compile time wi
 
 _INTRINSIC = {"exp": "llvm.exp.v8f64", "log": "llvm.log.v8f64", "sqrt": "llvm.sqrt.v8f64",
               "pow": "llvm.pow.v8f64", "max": "llvm.maximum.v8f64"}
-_ARITY = {"llvm.pow.v8f64": 2, "llvm.maximum.v8f64": 2}
+_ARITY = {"llvm.pow.v8f64": 2, "llvm.maximum.v8f64": 2, "llvm.umax.v8i64": 2}
+_TYPE = {"llvm.umax.v8i64": f"<{LANES} x i64>"}
 
 
 # ------------------------------------------------------------------ emission
@@ -510,8 +511,19 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
         return f"%{tag}"
 
     ok_in = true
+    ivec, umax = f"<{LANES} x i64>", "llvm.umax.v8i64"
+    top = "zeroinitializer"  # unsigned maximum of bits - 1 over the positive-and-finite columns
     for j, (low, inclusive) in enumerate(checks.floors):
         v = col("xc", j, "kx")
+        if low == 0 and not inclusive:
+            # x > 0 and finite ⇔ its bits are 1 .. 0x7FEFFFFFFFFFFFFF (NaN, ±inf,
+            # ±0 and negatives are not): bits − 1 (unsigned) ≤ 0x7FEFFFFFFFFFFFFE.
+            # Two integer operations per column instead of two compares.
+            out.append(f"  %kb{j} = bitcast {vec} {v} to {ivec}")
+            out.append(f"  %kc{j} = sub {ivec} %kb{j}, <{', '.join(['i64 1'] * LANES)}>")
+            out.append(f"  %kn{j} = call {ivec} @{umax}({ivec} {top}, {ivec} %kc{j})")
+            top = f"%kn{j}"
+            continue
         if low == -math.inf:
             ok = finite(v, f"kf{j}")
         else:  # above the floor and below +inf: finite (ordered: false on NaN)
@@ -520,6 +532,9 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
             out.append(f"  %ku{j} = fcmp olt {vec} {v}, {inf}")
             ok = conj(f"%kl{j}", f"%ku{j}", f"ko{j}")
         ok_in = ok if ok_in == true else conj(ok_in, ok, f"ki{j}")
+    if top != "zeroinitializer":
+        out.append(f"  %kpos = icmp ule {ivec} {top}, <{', '.join(['i64 9218868437227405310'] * LANES)}>")
+        ok_in = "%kpos" if ok_in == true else conj(ok_in, "%kpos", "kall")
     ok_p = true
     for b, (lo, hi) in enumerate(checks.blocks):
         acc = col("yc", lo, f"kp{b}.")
@@ -671,7 +686,7 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
                                          lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
                                          n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
                                          n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
-        uses |= {"llvm.fabs.v8f64"}
+        uses |= {"llvm.fabs.v8f64", "llvm.umax.v8i64"}
     driver += _DRIVER.format(
         entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
@@ -681,7 +696,8 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
         check_body=_CHECK_BODY if check else "  br label %next",
         check_tail=_CHECK_TAIL if check else "  br label %run_tail",
         refuse=_REFUSE if check else "")
-    decls = [f"declare {VEC} @{u}({', '.join([VEC] * _ARITY.get(u, 1))})" for u in sorted(uses)]
+    decls = [f"declare {_TYPE.get(u, VEC)} @{u}({', '.join([_TYPE.get(u, VEC)] * _ARITY.get(u, 1))})"
+             for u in sorted(uses)]
     decls.append("declare void @llvm.memcpy.p0.p0.i64(ptr noalias nocapture writeonly, "
                  "ptr noalias nocapture readonly, i64, i1 immarg)")
     head = (f"; treeflux steady-state kernel: {n_in} inputs, {n_out} outputs, "
@@ -761,7 +777,7 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
                                     ctypes.c_int64, ctypes.c_int64)(checked_address)
 
         def checked(X, out, status, start, stop):
-            return cchecked(X.ctypes.data, out.ctypes.data, status.ctypes.data, start, stop)
+            return cchecked(data_address(X), data_address(out), data_address(status), start, stop)
 
     return Kernel(run, n_inputs, n_outputs, backend="llvm",
                   recipe=(compile_text, (text, n_inputs, n_outputs)),
