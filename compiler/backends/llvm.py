@@ -356,7 +356,7 @@ def _chunks(fn: Function) -> tuple[list[str], set[str], int, int]:
 
 
 _BLOCK = """\
-define internal void @{block}(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y{sparam}) \
+define internal {rtype} @{block}(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y) \
 nounwind noinline {{
 entry:
   %xc = alloca [{n_cols_in} x {vec}], align 64
@@ -366,7 +366,7 @@ entry:
 {calls}
 {checks}
 {scatter}
-  ret void
+  ret {ret}
 }}
 
 """
@@ -490,7 +490,7 @@ refuse_tail:
 def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
     """The fused row checks of one block (see :class:`~treeflux.runtime.kernel.RowChecks`):
     input column vectors in ``%xc``, output column vectors in ``%yc``; eight
-    status bytes into ``%s``. Comparisons are ordered (false on NaN), so a
+    status bytes returned. Comparisons are ordered (false on NaN), so a
     NaN fails every test; sums fold left to right like the runtime's."""
     vec, mask = VEC, f"<{LANES} x i1>"
     inf, true = _splat(math.inf), "<" + ", ".join(["i1 true"] * LANES) + ">"
@@ -559,7 +559,7 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
         out.append(f"  %kz{bit} = select {mask} {ok}, <{LANES} x i8> zeroinitializer, <{LANES} x i8> {one}")
         out.append(f"  %kw{bit} = or <{LANES} x i8> {status}, %kz{bit}")
         status = f"%kw{bit}"
-    out.append(f"  store <{LANES} x i8> {status}, ptr %s, align 1")
+    out.append(f"  ret <{LANES} x i8> {status}")
     return out
 
 
@@ -583,8 +583,8 @@ body:
   %px = getelementptr inbounds double, ptr %X, i64 %ix
   %py = getelementptr inbounds double, ptr %Y, i64 %iy
   %ps = getelementptr inbounds i8, ptr %S, i64 %i
-  call void @tf_block_checked(ptr %px, ptr %py, ptr %ps)
-  %sv = load <{lanes} x i8>, ptr %ps, align 1
+  %sv = call <{lanes} x i8> @tf_block_checked(ptr %px, ptr %py)
+  store <{lanes} x i8> %sv, ptr %ps, align 1
   %nz = icmp ne <{lanes} x i8> %sv, zeroinitializer
   %nzb = bitcast <{lanes} x i1> %nz to i{lanes}
   %pc = call i{lanes} @llvm.ctpop.i{lanes}(i{lanes} %nzb)
@@ -613,15 +613,15 @@ copy:
   %ptx = getelementptr inbounds double, ptr %X, i64 %tx
   %bx = mul i64 %rx, 8
   call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
-  call void @tf_block_checked(ptr %xb, ptr %yb, ptr %sb)
+  %stv = call <{lanes} x i8> @tf_block_checked(ptr %xb, ptr %yb)
+  store <{lanes} x i8> %stv, ptr %sb, align 8
   %ty = mul i64 %end, {n_out}
   %pty = getelementptr inbounds double, ptr %Y, i64 %ty
   %by = mul i64 %rem, {n_out_bytes}
   call void @llvm.memcpy.p0.p0.i64(ptr align 8 %pty, ptr align 64 %yb, i64 %by, i1 false)
   %pts = getelementptr inbounds i8, ptr %S, i64 %end
   call void @llvm.memcpy.p0.p0.i64(ptr align 1 %pts, ptr align 8 %sb, i64 %rem, i1 false)
-  %st = load <{lanes} x i8>, ptr %sb, align 8
-  %stz = icmp ne <{lanes} x i8> %st, zeroinitializer
+  %stz = icmp ne <{lanes} x i8> %stv, zeroinitializer
   %remv.0 = insertelement <{lanes} x i64> poison, i64 %rem, i32 0
   %remv = shufflevector <{lanes} x i64> %remv.0, <{lanes} x i64> poison, <{lanes} x i32> zeroinitializer
   %real = icmp ult <{lanes} x i64> <{lane_ids}>, %remv
@@ -678,10 +678,14 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
     block = dict(calls=calls, vec=VEC, n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1),
                  n_cols_out=max(n_out, 1), gather="\n".join(_gather(n_in)),
                  scatter="\n".join(_scatter(n_out)))
-    driver = _BLOCK.format(block="tf_block", sparam="", checks="", **block)
+    driver = _BLOCK.format(block="tf_block", rtype="void", ret="void", checks="", **block)
     if checks is not None:
-        driver += _BLOCK.format(block="tf_block_checked", sparam=", ptr noalias nocapture writeonly %s",
-                                checks="\n".join(_check_lines(checks, n_in, n_out)), **block)
+        status = f"<{LANES} x i8>"
+        driver += _BLOCK.format(block="tf_block_checked", rtype=status, ret=f"{status} %status",
+                                checks=f"  %status = call {status} @tf_check(ptr %xc, ptr %yc)", **block)
+        driver += (f"define internal {status} @tf_check(ptr noalias nocapture readonly %xc, ptr noalias "
+                   "nocapture readonly %yc) nounwind noinline {\nentry:\n"
+                   + "\n".join(_check_lines(checks, n_in, n_out)) + "\n}\n\n")
         driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES,
                                          lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
                                          n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,

@@ -181,20 +181,26 @@ def checked_lines(checks) -> list[str]:
     back ends); returns the number of flagged rows."""
     lines = ["def run_checked(X, out, status, start, stop):", "    run(X, out, start, stop)",
              "    x = X[start:stop]", "    o = out[start:stop]",
-             "    ok = np.ones(x.shape[0], dtype=bool)", "    with np.errstate(invalid='ignore'):"]
+             "    s = np.zeros(x.shape[0], dtype=np.uint8)", "    with np.errstate(invalid='ignore'):"]
     for a, z, low, inclusive in floor_runs(checks.floors):
-        # minimum and maximum propagate NaN, which fails both comparisons
+        # a whole-block test first (minimum and maximum propagate NaN, which
+        # fails both comparisons); rows are looked at only when it fails
         cmp = ">=" if inclusive and low != float("-inf") else ">"
         floor = "-np.inf" if low == float("-inf") else repr(float(low))
-        lines.append(f"        ok &= (x[:, {a}:{z}].min(axis=1) {cmp} {floor}) & "
-                     f"(x[:, {a}:{z}].max(axis=1) < np.inf)")
-    lines.append("    s = ok.astype(np.uint8) ^ 1")
+        v = f"x[:, {a}:{z}]"
+        lines += [f"        if x.shape[0] and not ({v}.min() {cmp} {floor} and {v}.max() < np.inf):",
+                  f"            s[~(({v} {cmp} {floor}) & ({v} < np.inf)).all(axis=1)] |= 1"]
     for a, z in checks.blocks:
         total = " + ".join(f"o[:, {k}]" for k in range(a, z))
-        lines.append(f"    s[~(np.abs(({total}) - 1.0) <= {float(checks.tol)!r})] |= 2")
+        tol = repr(float(checks.tol))
+        lines += [f"        t = np.abs(({total}) - 1.0)",
+                  f"        if t.size and not t.max() <= {tol}:",
+                  f"            s[~(t <= {tol})] |= 2"]
     a, z = checks.finite
     if z > a:
-        lines.append(f"    s[~np.isfinite(o[:, {a}:{z}]).all(axis=1)] |= 4")
+        lines += [f"        f = o[:, {a}:{z}]",
+                  "        if f.size and not np.isfinite(f.sum()):",
+                  "            s[~np.isfinite(f).all(axis=1)] |= 4"]
     lines += ["    status[start:stop] = s", "    return int(np.count_nonzero(s))"]
     return lines
 
