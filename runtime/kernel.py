@@ -108,9 +108,9 @@ _CORES = max(1, os.cpu_count() or 1)
 
 
 def data_address(a: np.ndarray) -> int:
-    """The data address of a non-empty C-contiguous array, for a native call
+    """The data address of a C-contiguous array, for a native call
     (``ctypes.addressof`` of a writable buffer costs a third of ``a.ctypes.data``)."""
-    if a.flags.writeable:
+    if a.flags.writeable and a.nbytes:
         return ctypes.addressof(ctypes.c_char.from_buffer(a))
     return a.ctypes.data
 

@@ -392,3 +392,17 @@ def test_pickled_models_keep_the_fused_path(model_file, backend):
     assert clone._fused and clone.kernel.checked is not None
     X = plant(m, batch(m, seed=12, n=300), [3, 100, 299], "spread")
     same_bits(clone.steady_state(X), m.steady_state(X))
+
+
+@pytest.mark.parametrize("backend", ["c", "llvm"])
+def test_scheme_without_symbols(backend):
+    """No symbol columns (an (N, 0) array): nothing to check, nothing to address.
+    Balance 2·p_A = 1·p_B gives p = (1/3, 2/3) exactly (by hand)."""
+    from treeflux.compiler import Scheme
+
+    s = Scheme()
+    s.add_edge("A", "B", "2")
+    s.add_edge("B", "A", "1")
+    m = compile_scheme(s, backend=backend)
+    P = m.steady_state(np.zeros((5_000, 0)))
+    np.testing.assert_allclose(P, np.tile([1 / 3, 2 / 3], (5_000, 1)), rtol=1e-15)

@@ -355,6 +355,25 @@ def _chunks(fn: Function) -> tuple[list[str], set[str], int, int]:
     return text, uses, len(chunks), n_slots
 
 
+# The last, partial block of both drivers: its rows copied into %xb, the rest 1.0.
+_PAD = """\
+pad:
+  %rx = mul i64 %rem, {n_in}
+  br label %fill
+fill:
+  %f = phi i64 [%rx, %pad], [%f1, %fill]
+  %pf = getelementptr inbounds double, ptr %xb, i64 %f
+  store double 1.0, ptr %pf, align 8
+  %f1 = add i64 %f, 1
+  %filling = icmp slt i64 %f1, {n_block_in_1}
+  br i1 %filling, label %fill, label %copy
+copy:
+  %tx = mul i64 %end, {n_in}
+  %ptx = getelementptr inbounds double, ptr %X, i64 %tx
+  %bx = mul i64 %rx, 8
+  call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
+"""
+
 _BLOCK = """\
 define internal {rtype} @{block}(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y) \
 nounwind noinline {{
@@ -364,8 +383,7 @@ entry:
   %t = alloca [{n_slots} x {vec}], align 64
 {gather}
 {calls}
-{checks}
-{scatter}
+{checks}{scatter}
   ret {ret}
 }}
 
@@ -398,22 +416,7 @@ tail:
   %rem = sub i64 %stop, %end
   %has = icmp sgt i64 %rem, 0
   br i1 %has, label %pad, label %exit
-pad:
-  %rx = mul i64 %rem, {n_in}
-  br label %fill
-fill:
-  %f = phi i64 [%rx, %pad], [%f1, %fill]
-  %pf = getelementptr inbounds double, ptr %xb, i64 %f
-  store double 1.0, ptr %pf, align 8
-  %f1 = add i64 %f, 1
-  %filling = icmp slt i64 %f1, {n_block_in_1}
-  br i1 %filling, label %fill, label %copy
-copy:
-  %tx = mul i64 %end, {n_in}
-  %ptx = getelementptr inbounds double, ptr %X, i64 %tx
-  %bx = mul i64 %rx, 8
-  call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
-{check_tail}
+{pad}{check_tail}
 run_tail:
   call void @tf_block(ptr %xb, ptr %yb)
   %ty = mul i64 %end, {n_out}
@@ -545,7 +548,7 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
         out.append(f"  %kd{b} = fsub {vec} {acc}, {_splat(1.0)}")
         out.append(f"  %kd{b}.a = call {vec} @llvm.fabs.v8f64({vec} %kd{b})")
         out.append(f"  %kt{b} = fcmp ole {vec} %kd{b}.a, {_splat(float(checks.tol))}")
-        ok_p = f"%kt{b}" if ok_p == true else conj(ok_p, f"%kt{b}", f"kb{b}")
+        ok_p = f"%kt{b}" if ok_p == true else conj(ok_p, f"%kt{b}", f"kblk{b}")
     ok_f = true
     lo, hi = checks.finite
     for k in range(lo, hi):
@@ -598,22 +601,7 @@ tail:
   %rem = sub i64 %stop, %end
   %has = icmp sgt i64 %rem, 0
   br i1 %has, label %pad, label %exit
-pad:
-  %rx = mul i64 %rem, {n_in}
-  br label %fill
-fill:
-  %f = phi i64 [%rx, %pad], [%f1, %fill]
-  %pf = getelementptr inbounds double, ptr %xb, i64 %f
-  store double 1.0, ptr %pf, align 8
-  %f1 = add i64 %f, 1
-  %filling = icmp slt i64 %f1, {n_block_in_1}
-  br i1 %filling, label %fill, label %copy
-copy:
-  %tx = mul i64 %end, {n_in}
-  %ptx = getelementptr inbounds double, ptr %X, i64 %tx
-  %bx = mul i64 %rx, 8
-  call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
-  %stv = call <{lanes} x i8> @tf_block_checked(ptr %xb, ptr %yb)
+{pad}  %stv = call <{lanes} x i8> @tf_block_checked(ptr %xb, ptr %yb)
   store <{lanes} x i8> %stv, ptr %sb, align 8
   %ty = mul i64 %end, {n_out}
   %pty = getelementptr inbounds double, ptr %Y, i64 %ty
@@ -679,20 +667,21 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
                  n_cols_out=max(n_out, 1), gather="\n".join(_gather(n_in)),
                  scatter="\n".join(_scatter(n_out)))
     driver = _BLOCK.format(block="tf_block", rtype="void", ret="void", checks="", **block)
+    pad = _PAD.format(n_in=n_in, n_block_in_1=LANES * n_in)
     if checks is not None:
         status = f"<{LANES} x i8>"
         driver += _BLOCK.format(block="tf_block_checked", rtype=status, ret=f"{status} %status",
-                                checks=f"  %status = call {status} @tf_check(ptr %xc, ptr %yc)", **block)
+                                checks=f"  %status = call {status} @tf_check(ptr %xc, ptr %yc)\n", **block)
         driver += (f"define internal {status} @tf_check(ptr noalias nocapture readonly %xc, ptr noalias "
                    "nocapture readonly %yc) nounwind noinline {\nentry:\n"
                    + "\n".join(_check_lines(checks, n_in, n_out)) + "\n}\n\n")
-        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES,
+        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES, pad=pad,
                                          lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
                                          n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
                                          n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
         uses |= {"llvm.fabs.v8f64", "llvm.umax.v8i64"}
     driver += _DRIVER.format(
-        entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
+        pad=pad, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
         gather="\n".join(_gather(n_in)), scatter="\n".join(_scatter(n_out)),
         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
