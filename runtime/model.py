@@ -15,6 +15,13 @@ the looped subtraction-free elimination of :mod:`treeflux.runtime.numeric`
 that evaluate negative, NaN or infinite are refused with the file, the row and
 the edge by its state names.
 
+Kernels built by the compiler check every row themselves (the symbols
+against their floors, the row sums, the observables: one status byte per row,
+see :class:`treeflux.runtime.kernel.RowChecks`), so a call makes one pass
+over X; Python looks at the status only when rows were flagged, and those
+rows take the same refusals and recomputations as the separate numpy checks
+the models of signed rates (and ``_use_fused = False``) still run.
+
 All values are model predictions of the scheme, not measurements.
 """
 

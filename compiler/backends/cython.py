@@ -46,8 +46,6 @@ import warnings
 from functools import lru_cache
 from pathlib import Path
 
-import numpy as np
-
 from treeflux.runtime import cache
 from treeflux.runtime.kernel import Kernel
 from treeflux.runtime.progress import progress
