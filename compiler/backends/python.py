@@ -191,9 +191,11 @@ def checked_lines(checks) -> list[str]:
         lines += [f"        if x.shape[0] and not ({v}.min() {cmp} {floor} and {v}.max() < np.inf):",
                   f"            s[~(({v} {cmp} {floor}) & ({v} < np.inf)).all(axis=1)] |= 1"]
     for a, z in checks.blocks:
-        total = " + ".join(f"o[:, {k}]" for k in range(a, z))
         tol = repr(float(checks.tol))
-        lines += [f"        t = np.abs(({total}) - 1.0)",
+        cols = [f"o[:, {k}]" for k in range(a, z)]  # folded left to right, in bounded statements
+        lines += ["    " + ln for ln in _statements("t", "add", cols, None)] if len(cols) > 1 else [
+            f"        t = {cols[0]}"]
+        lines += ["        t = np.abs(t - 1.0)",
                   f"        if t.size and not t.max() <= {tol}:",
                   f"            s[~(t <= {tol})] |= 2"]
     a, z = checks.finite
