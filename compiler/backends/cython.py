@@ -120,13 +120,7 @@ static void tf_block_flat(const double *in, double *res)
     cdef double *yr
     cdef Py_ssize_t r0 = start, status = 0
     cdef int b, j, n, bad
-    while r0 < stop:
-        n = <int> (stop - r0) if stop - r0 < {lanes} else {lanes}
-        for b in range({lanes}):
-            xr = x + (r0 + (b if b < n else n - 1)) * {n_in}
-            for j in range({n_in}):
-                w[j * {lanes} + b] = xr[j]
-        # x * 0.0 is NaN exactly when x is NaN or +-inf.
+{load_block}        # x * 0.0 is NaN exactly when x is NaN or +-inf.
         for b in range({lanes}):
             nan_lane[b] = 0.0
         for j in range({n_in}):
@@ -172,6 +166,16 @@ def run(const double[:, ::1] x, double[:, ::1] out, Py_ssize_t start, Py_ssize_t
     return status
 {checked}"""
 
+
+# The next block of rows into the workspace (the last one padded with its last row).
+_LOAD_BLOCK = """\
+    while r0 < stop:
+        n = <int> (stop - r0) if stop - r0 < {lanes} else {lanes}
+        for b in range({lanes}):
+            xr = x + (r0 + (b if b < n else n - 1)) * {n_in}
+            for j in range({n_in}):
+                w[j * {lanes} + b] = xr[j]
+"""
 
 # Blocks shared out over threads: found[t] is the result of thread t's span.
 _PRANGE = """\
@@ -240,13 +244,7 @@ cdef Py_ssize_t _span_checked(const double *x, double *y, unsigned char *s, Py_s
     cdef double *yr
     cdef Py_ssize_t r0 = start, count = 0
     cdef int b, j, n
-    while r0 < stop:
-        n = <int> (stop - r0) if stop - r0 < {lanes} else {lanes}
-        for b in range({lanes}):
-            xr = x + (r0 + (b if b < n else n - 1)) * {n_in}
-            for j in range({n_in}):
-                w[j * {lanes} + b] = xr[j]
-        tf_block_flat(w, w + {res_at})
+{load_block}        tf_block_flat(w, w + {res_at})
         tf_check_flat(w, w + {res_at}, st)
         for b in range(n):
             yr = y + (r0 + b) * {n_out}
@@ -363,8 +361,10 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None,
     checked = interface is not None
     fields = dict(n_in=n_in, n_out=n_out, lanes=LANES, res_at=n_in * LANES, lanes_less=LANES - 1,
                   n_words=(n_in + n_res) * LANES, stores=stores,
-                  prange_checked=_PRANGE.format(span="_span_checked", extra="sp, ", lanes=LANES))
+                  prange_checked=_PRANGE.format(span="_span_checked", extra="sp, ", lanes=LANES),
+                  load_block=_LOAD_BLOCK.format(lanes=LANES, n_in=n_in))
     text = _PYX.format(prange_run=_PRANGE.format(span="_span", extra="", lanes=LANES),
+                       load_block=fields["load_block"],
                        check_c="" if checks is None else check_source(checks) + _CHECK_C,
                        check_decl="" if checks is None else _CHECK_DECL,
                        checked="" if checks is None else _CHECKED.format(**fields),name=name, n_in=n_in, n_out=n_out, lanes=LANES, n_in_dim=max(1, n_in),

@@ -355,6 +355,15 @@ def _chunks(fn: Function) -> tuple[list[str], set[str], int, int]:
     return text, uses, len(chunks), n_slots
 
 
+# Both drivers: the rows start..end of full blocks, then the tail.
+_FULL_BLOCKS = """\
+  %n = sub i64 %stop, %start
+  %nfull = and i64 %n, -{lanes}
+  %end = add i64 %start, %nfull
+  %any = icmp slt i64 %start, %end
+  br i1 %any, label %body, label %tail
+"""
+
 # The last, partial block of both drivers: its rows copied into %xb, the rest 1.0.
 _PAD = """\
 pad:
@@ -395,12 +404,7 @@ i64 %stop) nounwind {{
 entry:
   %xb = alloca [{n_block_in} x double], align 64
   %yb = alloca [{n_block_out} x double], align 64
-  %n = sub i64 %stop, %start
-  %nfull = and i64 %n, -{lanes}
-  %end = add i64 %start, %nfull
-  %any = icmp slt i64 %start, %end
-  br i1 %any, label %body, label %tail
-body:
+{full_blocks}body:
   %i = phi i64 [%start, %entry], [%i1, %next]
   %ix = mul i64 %i, {n_in}
   %iy = mul i64 %i, {n_out}
@@ -573,12 +577,7 @@ entry:
   %xb = alloca [{n_block_in} x double], align 64
   %yb = alloca [{n_block_out} x double], align 64
   %sb = alloca [{lanes} x i8], align 8
-  %n = sub i64 %stop, %start
-  %nfull = and i64 %n, -{lanes}
-  %end = add i64 %start, %nfull
-  %any = icmp slt i64 %start, %end
-  br i1 %any, label %body, label %tail
-body:
+{full_blocks}body:
   %i = phi i64 [%start, %entry], [%i1, %body]
   %cnt = phi i64 [0, %entry], [%cnt1, %body]
   %ix = mul i64 %i, {n_in}
@@ -668,6 +667,7 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
                  scatter="\n".join(_scatter(n_out)))
     driver = _BLOCK.format(block="tf_block", rtype="void", ret="void", checks="", **block)
     pad = _PAD.format(n_in=n_in, n_block_in_1=LANES * n_in)
+    full_blocks = _FULL_BLOCKS.format(lanes=LANES)
     if checks is not None:
         status = f"<{LANES} x i8>"
         driver += _BLOCK.format(block="tf_block_checked", rtype=status, ret=f"{status} %status",
@@ -675,13 +675,13 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
         driver += (f"define internal {status} @tf_check(ptr noalias nocapture readonly %xc, ptr noalias "
                    "nocapture readonly %yc) nounwind noinline {\nentry:\n"
                    + "\n".join(_check_lines(checks, n_in, n_out)) + "\n}\n\n")
-        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES, pad=pad,
+        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES, pad=pad, full_blocks=full_blocks,
                                          lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
                                          n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
                                          n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
         uses |= {"llvm.fabs.v8f64", "llvm.umax.v8i64"}
     driver += _DRIVER.format(
-        pad=pad, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
+        pad=pad, full_blocks=full_blocks, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
         gather="\n".join(_gather(n_in)), scatter="\n".join(_scatter(n_out)),
         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
