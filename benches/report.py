@@ -177,6 +177,50 @@ class Results:
 
 # ------------------------------------------------------------------ sections
 
+def section_public(R: Results, goals: list) -> list[str]:
+    """The lead table: what ``m.steady_state(X, out=)`` costs per back end
+    (benches/bench_public.py), against its own raw kernel and the baselines
+    timed round by round in the same test."""
+    lines = ["## What users get: the public call (Q3, Q4; rates log-uniform in [1e-3, 1e3])", "",
+             "`m.steady_state(X, out=out)` with everything it does — input checks, the in-kernel range "
+             "guard, recompute of flagged rows, the default thread count — median ns per parameter set. "
+             "Each ratio comes from calls interleaved round by round in one test: *vs raw kernel* is the "
+             "public call over the faster of `m.kernel(X, out, threads=1|2)` (no checks; goal ≤ 1.2× for "
+             "LLVM, ≤ 1.3× for every back end); *Numba loop* is the hand-written elimination with sets in "
+             "SIMD lanes at its faster thread count (time of the loop / time of the public call; goal for "
+             "LLVM ≥ 2.5× on Q3, ≥ 2× on Q4); *numpy* is the batched dense solve (assembly included) over "
+             "the public call. Floors as in the back-end tables below: arithmetic = compiled flops at "
+             "32 flops per cycle on one core, memory = 8·(n_symbols + n_states) bytes per set at the "
+             "copy bandwidth of the run; *of floor* = floor / public time.", ""]
+    for name in ("Q3", "Q4"):
+        for rows, tag in ((200000, "N200000"), (1024, "N1024")):
+            rws = []
+            for backend in ("llvm", "c", "cython", "python"):
+                e = R.info(f"bench_public.py::test_public_call[{name}-{backend}-{tag}]")
+                if not e:
+                    continue
+                t, ratio = e["public_ns"], e["public_over_raw"]
+                rws.append([backend, ns(t), f"{e.get('default_threads')}", ns(e["raw_best_ns"]),
+                            f"{ratio:.2f}× {met(ratio <= e['goal_public_over_raw'])}",
+                            f"{e['numpy_over_public']:,.0f}×", ns(e["numba_best_ns"]),
+                            f"{e['numba_over_public']:.2f}×" + (f" {met(e['numba_over_public'] >= e['goal_numba_over_public'])}"
+                                                                if e.get("goal_numba_over_public") else ""),
+                            ns(e["arith_floor_ns"]), f"{e['arith_floor_fraction']:.0%}",
+                            ns(e["memory_floor_ns"]), f"{e['memory_floor_fraction']:.0%}"])
+                goals.append((f"{name} N = {rows:,}: public call / raw kernel, {backend}",
+                              f"≤ {e['goal_public_over_raw']}×", f"{ratio:.2f}×", ratio <= e["goal_public_over_raw"]))
+                if e.get("goal_numba_over_public"):
+                    g = e["goal_numba_over_public"]
+                    goals.append((f"{name} N = {rows:,}: public call vs the Numba loop, {backend}", f"≥ {g}×",
+                                  f"{e['numba_over_public']:.2f}×", e["numba_over_public"] >= g))
+            if rws:
+                lines += [f"### {name}, N = {rows:,}", ""]
+                lines += table(["back end", "public call", "threads", "raw kernel", "vs raw kernel",
+                                "vs numpy", "Numba loop", "vs Numba", "arith. floor", "of floor",
+                                "memory floor", "of floor"], rws)
+    return lines if len(lines) > 3 else []
+
+
 def section_backends(R: Results, goals: list) -> list[str]:
     lines = ["## Back ends (Q3, Q4; rates log-uniform in [1e-3, 1e3])", "",
              "Raw compiled kernel (`m.kernel(X, out, threads=t)`), median ns per parameter set. "
@@ -377,7 +421,8 @@ def section_large(R: Results, goals: list) -> list[str]:
 
 
 def section_others(R: Results) -> list[str]:
-    files = sorted({k.split("::")[0] for k in R.by_name} - {"bench_backends.py", "bench_large.py"})
+    files = sorted({k.split("::")[0] for k in R.by_name} - {"bench_backends.py", "bench_large.py",
+                                                            "bench_public.py"})
     lines = ["## Other benches in this directory", "",
              "Figures recorded by " + ", ".join(f"`{f}`" for f in files) + " (their own goals and "
              "baselines; see each file's docstring). Time is the pytest-benchmark median of the timed call.", ""]
@@ -422,6 +467,7 @@ def others_goals(R: Results, goals: list) -> None:
 def write_readme(data: dict, run: dict, mach: dict, path: Path) -> list:
     R = Results(data)
     goals: list = []
+    lead = section_public(R, goals)
     body = []
     body += section_backends(R, goals)
     body += section_numeric(R, goals)
@@ -452,7 +498,7 @@ def write_readme(data: dict, run: dict, mach: dict, path: Path) -> list:
         head += ["pytest: " + "; ".join(run["summary"]), ""]
     summary = ["## Goals", ""] + table(["goal", "target", "measured", ""],
                                        [[g, t, m, met(ok)] for g, t, m, ok in goals])
-    path.write_text("\n".join(head + summary + body).rstrip() + "\n")
+    path.write_text("\n".join(head + lead + summary + body).rstrip() + "\n")
     return goals
 
 

@@ -17,7 +17,8 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from treeflux.runtime.model import CompiledModel, ModelInfo
+from treeflux.runtime.kernel import RowChecks
+from treeflux.runtime.model import CompiledModel, ModelInfo, symbol_floors
 from treeflux.runtime.resources import available_memory, format_bytes
 
 from . import ir
@@ -438,7 +439,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         if jacobian or input_derivatives:
             raise ModelError(f"{scheme.origin}: derivatives need a straight-line method; this scheme "
                              f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
-        kernel, groups = None, {}
+        kernel, groups, kernel_ops = None, {}, 0
         comps = _structure().terminal_components(n, edges)
         weights = _constant_weights(scheme)
     else:
@@ -463,8 +464,10 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
             fn = _derivatives(scheme, fn, jacobian=jacobian,
                               along=input_derivatives, timings=timings, report=deriv_report)
         t0 = time.perf_counter()
-        kernel = back.build(ir.compact(fn), name=name)
+        compact = ir.compact(fn)
+        kernel = back.build(compact, name=name, checks=_row_checks(scheme, fn.groups))
         timings["backend"] = time.perf_counter() - t0
+        kernel_ops = sum(op not in ("const", "input") for op in compact.graph.ops)
         groups = dict(fn.groups)
     from .frontend import rates_may_be_negative
 
@@ -481,7 +484,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         log_jacobian=log_jacobian,
         tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0,
         origin=str(scheme.origin), guarded=kernel is not None,
-        signed_rates=rates_may_be_negative(scheme))
+        signed_rates=rates_may_be_negative(scheme), kernel_ops=kernel_ops)
     profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report,
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
@@ -490,6 +493,24 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
+
+
+def _row_checks(scheme: Scheme, groups: dict) -> RowChecks:
+    """The checks fused into the runtime kernel: every symbol against its
+    floor (:func:`treeflux.runtime.model.symbol_floors`), the row sum of each
+    probability block (p, or one block per terminal component of the basis),
+    the observables finite."""
+    params = tuple(s.name for s in scheme.parameters)
+    names = params + tuple(s.name for s in scheme.inputs)
+    bounds = {s.name: (s.min, s.max) for s in scheme.parameters + scheme.inputs}
+    n = len(scheme.states)
+    if "p" in groups:
+        blocks = (groups["p"],)
+    else:
+        a, b = groups["basis"]
+        blocks = tuple((k, k + n) for k in range(a, b, n))
+    return RowChecks(floors=symbol_floors(names, len(params), bounds), blocks=tuple(blocks),
+                     finite=groups.get("obs", (0, 0)), tol=CompiledModel.ROW_SUM_TOL)
 
 
 def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:

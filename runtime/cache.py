@@ -66,6 +66,10 @@ SECRET = ".key"
 LOCKS = ".locks"
 UNTRUSTED = ".untrusted"
 FORMAT = 2
+# Version of the ABI of the kernels stored in the cache (part of every key, so
+# an entry built for another ABI is never found, never loaded). 2: kernels
+# built for the runtime carry the checked entry (fused row checks, status bytes).
+KERNEL_ABI = 2
 MAX_PINS = 256
 # The Cache Directory Tagging Specification's signature (an open standard:
 # backup tools skip folders holding this file), then treeflux's own lines.
@@ -109,9 +113,10 @@ def host_features() -> str:
 
 
 def make_key(*parts) -> str:
-    """A cache key: SHA-256 over the given parts (text), the format and the host."""
+    """A cache key: SHA-256 over the given parts (text), the format, the
+    kernel ABI and the host."""
     h = hashlib.sha256()
-    for p in (f"format={FORMAT}", host_features(), *map(str, parts)):
+    for p in (f"format={FORMAT}", f"abi={KERNEL_ABI}", host_features(), *map(str, parts)):
         h.update(p.encode())
         h.update(b"\0")
     return h.hexdigest()[:40]

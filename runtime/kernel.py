@@ -5,13 +5,26 @@ that evaluates rows ``start:stop`` of the C-contiguous float64 array ``X``
 (N, n_inputs) into ``out`` (N, n_outputs) and returns 0, or a non-zero status
 (row index + 1 of the first row it refused). Native row-range functions
 release the GIL, so :class:`Kernel` splits large N across threads.
+
+Kernels built for the runtime also carry a *checked* row-range function
+``checked(X, out, status, start, stop) -> count`` (the fused checks of
+:class:`RowChecks`): while it holds a block of rows in registers anyway it
+tests every symbol against its floor, the row sums of the probability blocks
+and the finiteness of chosen outputs, writes one status byte per row
+(:data:`BAD_SYMBOL`, :data:`NOT_PROBABILITY`, :data:`NOT_FINITE`, or 0) into
+the uint8 array ``status`` and returns how many rows it flagged. Every row is
+evaluated and written, flagged or not; the caller looks at ``status`` only
+when the count is non-zero.
 """
 
 from __future__ import annotations
 
+import ctypes
 import hashlib
 import os
+import time
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -20,6 +33,28 @@ from .errors import EvaluationError
 # Below this many rows per thread, one thread is faster (thread start-up and
 # cache effects dominate); measured in benches/bench_backends.py.
 MIN_ROWS_PER_THREAD = 2048
+
+#: Status bits of the checked row-range functions (one uint8 per row).
+BAD_SYMBOL = 1        # a symbol is not finite or below its floor: refuse (the runtime names it)
+NOT_PROBABILITY = 2   # a probability block is not finite or its sum misses 1 by more than tol
+NOT_FINITE = 4        # an output of the ``finite`` range is not finite
+
+
+@dataclass(frozen=True)
+class RowChecks:
+    """What a checked kernel tests per row (see the module docstring).
+
+    ``floors``: per input ``(low, inclusive)``: the value must be finite and
+    ``> low`` (``>= low`` when inclusive); ``low = -inf`` with inclusive
+    asks for finiteness only. ``blocks``: ``(start, stop)`` output ranges
+    that are probability vectors: their sum, added left to right, must be
+    finite and within ``tol`` of 1. ``finite``: ``(start, stop)`` outputs that
+    must be finite (``(0, 0)``: none)."""
+
+    floors: tuple
+    blocks: tuple
+    finite: tuple = (0, 0)
+    tol: float = 2.0 ** -40
 
 _POOL: ThreadPoolExecutor | None = None
 # Threads per call when the caller gives none (None: every core). Worker
@@ -54,6 +89,32 @@ def _pool() -> ThreadPoolExecutor:
     return _POOL
 
 
+# Default thread count (threads=None). A second thread pays only when a
+# row's arithmetic outweighs its memory traffic, and that depends on the
+# machine as much as on the model: Q3 with LLVM at N = 200,000 ran 8.5 ns per
+# set on one thread and slower on two on one 2-core AVX-512 machine (memory
+# bound, TECH-NOTES), while on another 2-core Xeon it ran 32 ns on one and
+# 16 ns on two (compute bound); Q4 and Q5 gained nothing there with the other
+# core busy. No fixed rule is right on both, so each kernel measures itself:
+# calls of at least 2 × MIN_ROWS_PER_THREAD rows are timed, the first runs on
+# one thread, the next one large enough (≥ MIN_SPLIT_SECONDS on one thread)
+# on every core it may use, and from then on the split is used only if its
+# best time per row beat one thread's best by SPLIT_GAIN. So at most one call
+# is slower than one thread would have been, and none after it. Threads never
+# change the bits (rows are independent).
+MIN_SPLIT_SECONDS = 200e-6
+SPLIT_GAIN = 0.9
+_CORES = max(1, os.cpu_count() or 1)
+
+
+def data_address(a: np.ndarray) -> int:
+    """The data address of a C-contiguous array, for a native call
+    (``ctypes.addressof`` of a writable buffer costs a third of ``a.ctypes.data``)."""
+    if a.flags.writeable and a.nbytes:
+        return ctypes.addressof(ctypes.c_char.from_buffer(a))
+    return a.ctypes.data
+
+
 def check_threads(threads) -> None:
     """``threads`` is None (all cores) or a positive integer; else EvaluationError."""
     if threads is None:
@@ -82,14 +143,52 @@ class Kernel:
     """
 
     def __init__(self, run, n_inputs: int, n_outputs: int, *, backend: str,
-                 recipe=None, keepalive=None, parallel: bool = True):
+                 recipe=None, keepalive=None, parallel: bool = True, checked=None):
         self.run = run
+        self.checked = checked
         self.n_inputs = n_inputs
         self.n_outputs = n_outputs
         self.backend = backend
         self.recipe = recipe
         self.parallel = parallel
         self._keepalive = keepalive
+        self.native_threads = False  # the compiled code runs its own threads (OpenMP)
+        self.seconds_per_row: dict = {}  # threads → best time per row seen (the thread rule)
+
+    def threads_for(self, n: int, threads: int | None = None) -> int:
+        """Threads a call on ``n`` rows uses: ``threads`` if given (at most
+        one per :data:`MIN_ROWS_PER_THREAD` rows), else the measured rule
+        above."""
+        if n < 2 * MIN_ROWS_PER_THREAD or not (self.parallel or self.native_threads):
+            return 1
+        most = min(_CORES, n // MIN_ROWS_PER_THREAD)
+        if threads is None and _DEFAULT_THREADS is None:
+            one = self.seconds_per_row.get(1)
+            if one is None or n * one < MIN_SPLIT_SECONDS:
+                return 1
+            split = self.seconds_per_row.get(most)
+            return most if split is None or split < SPLIT_GAIN * one else 1
+        return max(1, min(threads or _DEFAULT_THREADS, most))
+
+    def _timed(self, func, n: int, threads: int, *args):
+        """``self._split(func, ...)``, timed into :attr:`seconds_per_row` for large calls."""
+        if n < 2 * MIN_ROWS_PER_THREAD:
+            return self._split(func, n, threads, *args)
+        t0 = time.perf_counter()
+        result = self._split(func, n, threads, *args)
+        per_row = (time.perf_counter() - t0) / n
+        best = self.seconds_per_row.get(threads)
+        if best is None or per_row < best:
+            self.seconds_per_row[threads] = per_row
+        return result
+
+    def _split(self, func, n: int, threads: int, *args) -> list:
+        """``func(*args, start, stop)`` over ``threads`` contiguous row ranges."""
+        if threads == 1:
+            return [func(*args, 0, n)]
+        bounds = np.linspace(0, n, threads + 1).astype(int)
+        return list(_pool().map(lambda ab: func(*args, int(ab[0]), int(ab[1])),
+                                zip(bounds[:-1], bounds[1:])))
 
     def __call__(self, X: np.ndarray, out: np.ndarray | None = None, *, threads: int | None = None):
         X = np.ascontiguousarray(X, dtype=np.float64)
@@ -101,19 +200,23 @@ class Kernel:
         elif out.shape != (n, self.n_outputs) or out.dtype != np.float64 or not out.flags.c_contiguous:
             raise EvaluationError(f"out must be a C-contiguous float64 array of shape {(n, self.n_outputs)}")
         check_threads(threads)
-        threads = threads or _DEFAULT_THREADS or (os.cpu_count() or 1)
-        threads = max(1, min(threads, n // MIN_ROWS_PER_THREAD)) if self.parallel else 1
-        if threads == 1:
-            status = [self.run(X, out, 0, n)]
-        else:
-            bounds = np.linspace(0, n, threads + 1).astype(int)
-            status = list(_pool().map(lambda ab: self.run(X, out, int(ab[0]), int(ab[1])),
-                                      zip(bounds[:-1], bounds[1:])))
+        status = self._timed(self.run, n, self.threads_for(n, threads), X, out)
         bad = [s for s in status if s]
         if bad:
             raise EvaluationError(f"row {min(bad) - 1}: the kernel refused this parameter set "
                                   "(a rate is non-positive or not finite)")
         return out
+
+    def check(self, X: np.ndarray, out: np.ndarray, status: np.ndarray, threads: int) -> int:
+        """The checked row-range function over all rows of ``X`` on ``threads``
+        threads: outputs into ``out``, one status byte per row into ``status``;
+        returns the number of flagged rows. No argument checks: the caller
+        passes a C-contiguous float64 ``X`` (N, n_inputs), ``out`` (N,
+        n_outputs) and uint8 ``status`` (N,), none overlapping."""
+        n = X.shape[0]
+        if n < 2 * MIN_ROWS_PER_THREAD:
+            return self.checked(X, out, status, 0, n) if n else 0
+        return sum(self._timed(self.checked, n, threads, X, out, status))
 
     def __reduce__(self):
         """Pickle as the recipe (data), rebuilt once per process by :func:`rebuild`."""

@@ -15,6 +15,13 @@ the looped subtraction-free elimination of :mod:`treeflux.runtime.numeric`
 that evaluate negative, NaN or infinite are refused with the file, the row and
 the edge by its state names.
 
+Kernels built by the compiler check every row themselves (the symbols
+against their floors, the row sums, the observables: one status byte per row,
+see :class:`treeflux.runtime.kernel.RowChecks`), so a call makes one pass
+over X; Python looks at the status only when rows were flagged, and those
+rows take the same refusals and recomputations as the separate numpy checks
+the models of signed rates (and ``_use_fused = False``) still run.
+
 All values are model predictions of the scheme, not measurements.
 """
 
@@ -25,7 +32,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import EvaluationError
-from .kernel import Kernel, check_threads
+from .kernel import BAD_SYMBOL, NOT_FINITE, NOT_PROBABILITY, Kernel, check_threads
+
+_F64 = np.dtype(np.float64)
 
 
 @dataclass
@@ -56,6 +65,7 @@ class ModelInfo:
     # Observables as Σ_i p_i·w_ik(θ): [observable index, state index, weight
     # tree] (trees as label_trees); evaluated per row on every path.
     observable_terms: list = field(default_factory=list)
+    kernel_ops: int = 0          # computed rows of the kernel's body per set (picks the thread count)
 
 
 class CompiledModel:
@@ -78,6 +88,24 @@ class CompiledModel:
         self.plan = None  # EliminationPlan of the looped numeric path, built on first use
         self._zero_plans: dict = {}  # plans for rows whose zero rates remove edges
         self.profile = profile or {}
+        # The fused path: the kernel checks every row itself (see _guarded).
+        # Signed-rate models keep the checks in Python (their rates are
+        # checked from the label kernel before the steady-state kernel runs).
+        self._fusable = (kernel is not None and getattr(kernel, "checked", None) is not None
+                         and info.guarded and not info.signed_rates)
+        n_out = kernel.n_outputs if kernel is not None else -1
+        # steady_state's lean path: p is the kernel's whole output
+        self._lean = (kernel, len(self.symbols), n_out) if (
+            self._fusable and len(info.components) == 1 and tuple(info.groups.get("p", ())) == (0, n_out)
+        ) else None
+
+    #: Private switch (tests): False runs the checks as separate numpy passes
+    #: before and after the raw kernel, as before the checks moved into the kernels.
+    _use_fused = True
+
+    @property
+    def _fused(self) -> bool:
+        return self._fusable and self._use_fused
 
     # ------------------------------------------------------------ metadata
     @property
@@ -111,6 +139,21 @@ class CompiledModel:
         Accepted: real numbers (float or integer arrays, Python numbers). Refused
         with an :class:`EvaluationError`: complex, boolean, string, object and
         masked arrays, strings and booleans in a dict, numbers beyond float64."""
+        arr = self._convert(X)
+        self._check(arr)
+        return arr
+
+    def _input(self, X) -> np.ndarray:
+        """``X`` for a checked evaluation: converted only when the kernel
+        checks the symbols itself (:meth:`_guarded` refuses a flagged row with
+        :meth:`_check`'s message), else converted and checked."""
+        return self._convert(X) if self._fused else self.as_array(X)
+
+    def _convert(self, X) -> np.ndarray:
+        """:meth:`as_array` without the symbol checks."""
+        if (type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2 and X.shape[1] == len(self.info.parameters)
+                + len(self.info.inputs) and X.flags.c_contiguous):
+            return X
         syms = self.symbols
         if isinstance(X, dict):
             unknown = [k for k in X if k not in syms]
@@ -142,7 +185,6 @@ class CompiledModel:
                 raise EvaluationError(f"expected an (N, {len(syms)}) array of symbol values "
                                       f"({', '.join(syms)}), got shape {arr.shape}")
             arr = np.ascontiguousarray(arr)
-        self._check(arr)
         return arr
 
     def _check(self, arr: np.ndarray) -> None:
@@ -166,15 +208,8 @@ class CompiledModel:
                                       f"got {float(col[r])}")
 
     def _symbol_floor(self, c: int, n_par: int) -> tuple[float, bool]:
-        """(lowest allowed value, strict) of symbol c: a declared min below 0
-        lets the symbol be negative (voltages, free energies) — rates are
-        checked instead; otherwise parameters > 0 and inputs ≥ 0."""
-        low = self.info.bounds.get(self.symbols[c], (None, None))[0] if self.info.bounds else None
-        if low is not None and low < 0:
-            return -np.inf, False
-        if low is not None and low == 0:
-            return 0.0, False
-        return 0.0, c < n_par
+        """(lowest allowed value, strict) of symbol c (see :func:`symbol_floor`)."""
+        return symbol_floor(self.symbols[c], c < n_par, self.info.bounds)
 
     def _quick_ok(self, arr: np.ndarray, n_par: int) -> bool:
         """Read-only min/max reductions (NaN fails every comparison); the
@@ -241,16 +276,35 @@ class CompiledModel:
     # least 2^-38, so this also catches every set outside the safe range.
     ROW_SUM_TOL = 2.0 ** -40
 
-    def _guarded(self, arr, threads=None, out=None):
+    def _guarded(self, arr, threads=None, out=None, *, bits=NOT_PROBABILITY):
         """The one checked evaluation every output goes through.
 
-        Runs the kernel and returns ``(outputs, bad)``: ``bad`` marks the rows
-        whose steady state (every block of the basis) is not a probability
-        vector to working accuracy — non-finite, rows outside the range where
-        the straight-line formulas are safe (the in-kernel guard), zero rates
-        (absent edges). Those rows must be recomputed (:meth:`_numeric`) or
-        refused by the caller. Rates are checked first when some rate may
-        evaluate negative (a subtraction in a label, a signed symbol)."""
+        Runs the kernel and returns ``(outputs, bad)``: ``bad`` (None when no
+        row is flagged) marks the rows whose steady state (every block of the
+        basis) is not a probability vector to working accuracy — non-finite,
+        rows outside the range where the straight-line formulas are safe (the
+        in-kernel guard), zero rates (absent edges) — and, when ``bits`` has
+        NOT_FINITE, rows whose observables are not finite. Those rows must be
+        recomputed (:meth:`_numeric`) or refused by the caller.
+
+        Kernels built with the fused checks (:class:`.kernel.RowChecks`) test
+        the symbols, the row sums and the observables while they hold each
+        block of rows: one pass over X, one status byte per row, and Python
+        looks at the status only when the kernel flagged a row (a flagged
+        symbol is refused by :meth:`_check`, with its message). Otherwise the
+        caller has checked the symbols (:meth:`as_array`) and the sums are
+        tested here; rates are checked first when some rate may evaluate
+        negative (a subtraction in a label, a signed symbol)."""
+        if self._fused:
+            check_threads(threads)
+            kernel = self.kernel
+            n = arr.shape[0]
+            if out is None:
+                out = np.empty((n, kernel.n_outputs))
+            status = np.empty(n, dtype=np.uint8)
+            if kernel.check(arr, out, status, kernel.threads_for(n, threads)) == 0:
+                return out, None
+            return out, self._flagged(arr, status, bits)
         if self.info.signed_rates:
             self._check_rates(self.label_kernel(arr))
         outputs = self._outputs(arr, threads, out)
@@ -264,15 +318,46 @@ class CompiledModel:
             bad |= ~(np.abs(block @ ones - 1.0) <= self.ROW_SUM_TOL)
         if not self.info.guarded and self.info.tree_edges:
             bad |= self._tree_underflow(arr)          # kernels compiled before the in-kernel guard
-        return outputs, bad
+        if bits & NOT_FINITE and "obs" in self.info.groups:
+            a, b = self.info.groups["obs"]
+            bad |= ~np.isfinite(outputs[:, a:b]).all(axis=1)
+        return outputs, (bad if bad.any() else None)
+
+    def _flagged(self, arr: np.ndarray, status: np.ndarray, bits: int):
+        """Rows a checked kernel flagged (``status``, one byte per row) that
+        the caller must recompute; a flagged symbol is refused with
+        :meth:`_check`'s message (the file, the row, the symbol)."""
+        if (status & BAD_SYMBOL).any():
+            self._check(arr)  # the kernel's floors are _check's: this raises
+        bad = (status & (bits | BAD_SYMBOL)) != 0
+        return bad if bad.any() else None
 
     def steady_state(self, X, *, out=None, threads=None) -> np.ndarray:
         """Steady-state probabilities (N, n_states) in :attr:`states` order.
 
         ``out``, a C-contiguous float64 (N, n_states) array, is written in
-        place (no allocation: reuse it in fitting loops)."""
+        place (no allocation: reuse it in fitting loops); if the call is
+        refused, ``out`` may hold partial results."""
+        lean = self._lean
+        if (lean is not None and type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2
+                and X.shape[1] == lean[1] and X.flags.c_contiguous and self._use_fused):
+            # the lean path: a float64 array of the right shape, one native call
+            kernel, _, n_out = lean
+            n = X.shape[0]
+            if threads is not None:
+                check_threads(threads)
+            if out is None:
+                out = np.empty((n, n_out))
+            else:
+                _check_out(out, (n, n_out), X)
+            status = np.empty(n, dtype=np.uint8)
+            if kernel.check(X, out, status, kernel.threads_for(n, threads)):
+                bad = self._flagged(X, status, NOT_PROBABILITY)
+                if bad is not None:
+                    out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
+            return out
         self._require_single()
-        arr = self.as_array(X)
+        arr = self._input(X)
         shape = (arr.shape[0], len(self.states))
         check_threads(threads)
         if out is not None:
@@ -285,7 +370,7 @@ class CompiledModel:
                       and out.flags.c_contiguous)
             outputs, bad = self._guarded(arr, threads, out if direct else None)
             P = outputs[:, a:b]
-            if bad.any():
+            if bad is not None:
                 if not direct:
                     P = np.array(P)
                 P[bad] = self._numeric(arr[bad], rows=np.flatnonzero(bad))
@@ -362,7 +447,7 @@ class CompiledModel:
 
     def basis(self, X, *, threads=None) -> np.ndarray:
         """One steady state per terminal component: (N, n_components, n_states)."""
-        arr = self.as_array(X)
+        arr = self._input(X)
         n, c = len(self.states), len(self.info.components)
         if self.kernel is None:
             if c == 1:
@@ -373,7 +458,7 @@ class CompiledModel:
         a, b = self.info.groups[key]
         outputs, bad = self._guarded(arr, threads)
         B = np.array(outputs[:, a:b]).reshape(arr.shape[0], c, n)
-        if bad.any():
+        if bad is not None:
             rows = np.flatnonzero(bad)
             B[rows] = (self._numeric(arr[rows], rows)[:, None, :] if c == 1
                        else self._numeric_basis(arr[rows], rows))
@@ -419,14 +504,13 @@ class CompiledModel:
         if not self.info.observable_names:
             raise EvaluationError("the model declares no observables")
         self._require_single()
-        arr = self.as_array(X)
+        arr = self._input(X)
         if self.kernel is None or "obs" not in self.info.groups:
             return self.observables_from(arr, self.steady_state(arr, threads=threads))
         a, b = self.info.groups["obs"]
-        outputs, bad = self._guarded(arr, threads)
+        outputs, bad = self._guarded(arr, threads, bits=NOT_PROBABILITY | NOT_FINITE)
         O = np.array(outputs[:, a:b])
-        bad |= ~np.isfinite(O).all(axis=1)
-        if bad.any():
+        if bad is not None:
             rows = np.flatnonzero(bad)
             O[rows] = self.observables_from(arr[rows], self._numeric(arr[rows], rows))
         return O
@@ -504,14 +588,14 @@ class CompiledModel:
         if "jac" not in self.info.groups:
             raise EvaluationError("compile with jacobian=True to get derivatives")
         self._require_single()
-        return self._derivatives(self.as_array(X), "jac", None, threads)
+        return self._derivatives(self._input(X), "jac", None, threads)
 
     def observable_jacobian(self, X, *, threads=None) -> np.ndarray:
         """∂O_k/∂θ_j as (N, n_observables, n_symbols) when compiled with jacobian."""
         if "obs_jac" not in self.info.groups:
             raise EvaluationError("compile with jacobian=True (and declare observables) for their gradients")
         self._require_single()
-        return self._derivatives(self.as_array(X), "obs_jac", self._observable_rows, threads)
+        return self._derivatives(self._input(X), "obs_jac", self._observable_rows, threads)
 
     def _derivatives(self, arr, group, weights, threads) -> np.ndarray:
         """The compiled log-form derivatives of ``group``, divided by θ for the
@@ -522,6 +606,7 @@ class CompiledModel:
 
         out, redo = self._guarded(arr, threads)
         N, nsym = arr.shape[0], len(self.symbols)
+        redo = np.zeros(N, dtype=bool) if redo is None else redo
         a, b = self.info.groups[group]
         J = np.array(out[:, a:b]).reshape(N, -1, nsym)
         zero = np.zeros_like(arr, dtype=bool)
@@ -558,9 +643,9 @@ class CompiledModel:
         if prefix + "d1" not in self.info.groups:
             raise EvaluationError("compile with input_derivatives=NAME to get derivatives along an input")
         self._require_single()
-        arr = self.as_array(X)
+        arr = self._input(X)
         out, bad = self._guarded(arr, threads)
-        if bad.any():
+        if bad is not None:
             r = int(np.argmax(bad))
             self._numeric(arr[r:r + 1], np.array([r]))       # names a bad rate or zero pattern, if any
             raise EvaluationError(f"{self._where()}row {r}: the rates span too many orders of magnitude "
@@ -598,6 +683,26 @@ class CompiledModel:
 
 
 # ------------------------------------------------------------ argument checks
+
+def symbol_floor(name: str, parameter: bool, bounds: dict | None) -> tuple[float, bool]:
+    """(lowest allowed value, strict) of a symbol: a declared min below 0
+    lets the symbol be negative (voltages, free energies) — rates are
+    checked instead; otherwise parameters > 0 and inputs ≥ 0."""
+    low = bounds.get(name, (None, None))[0] if bounds else None
+    if low is not None and low < 0:
+        return -np.inf, False
+    if low is not None and low == 0:
+        return 0.0, False
+    return 0.0, parameter
+
+
+def symbol_floors(names, n_par: int, bounds: dict | None) -> tuple:
+    """``(low, inclusive)`` per symbol for the checks fused into the kernels
+    (:class:`~treeflux.runtime.kernel.RowChecks`): the same rule as
+    :meth:`CompiledModel._check`."""
+    return tuple((float(low), not strict) for low, strict in
+                 (symbol_floor(s, c < n_par, bounds) for c, s in enumerate(names)))
+
 
 def _shown(value) -> str:
     """A short one-line repr for messages (no control characters, no numpy repr)."""

@@ -29,9 +29,9 @@ def kernel_function(d):
     captured = {}
     real = cback.build
 
-    def grab(fn, *, name="treeflux_model"):
+    def grab(fn, *, name="treeflux_model", **options):
         captured["fn"] = fn
-        return real(fn, name=name)
+        return real(fn, name=name, **options)
 
     cback.build = grab
     try:

@@ -42,7 +42,7 @@ import heapq
 import re
 from fractions import Fraction
 
-from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.kernel import Kernel, data_address
 from treeflux.runtime.progress import progress
 
 from ..ir import Function
@@ -505,7 +505,93 @@ def block_source(fn: Function) -> tuple[str, int]:
     return _ROWS + helpers + "\n" + body, n_slots
 
 
-def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict[str, str]:
+def floor_runs(floors) -> list[tuple[int, int, float, bool]]:
+    """Contiguous runs ``(start, stop, low, inclusive)`` of inputs sharing a floor."""
+    runs: list = []
+    for j, (low, inclusive) in enumerate(floors):
+        if runs and runs[-1][2:] == (low, inclusive):
+            runs[-1] = (runs[-1][0], j + 1, low, inclusive)
+        else:
+            runs.append((j, j + 1, low, inclusive))
+    return runs
+
+
+def check_source(checks) -> str:
+    """``tf_check(in, res, st)``: the fused row checks of one block (see
+    :class:`~treeflux.runtime.kernel.RowChecks`), shared by the C and Cython
+    back ends. ``in[j][b]`` is input j of lane b, ``res[k][b]`` output k; the
+    status byte of lane b goes to ``st[b]``. Lane loops of fixed length that
+    gcc vectorises; comparisons are false on NaN, sums fold left to right."""
+    lines = ["static void tf_check(const double (*restrict in)[TF_LANES], "
+             "const double (*restrict res)[TF_LANES], unsigned char *restrict st)",
+             "{", "    int b, k;", "    double s[TF_LANES];", "    unsigned char bad[TF_LANES];",
+             "    unsigned long long top[TF_LANES];", "    (void)k; (void)s; (void)top;",
+             "    for (b = 0; b < TF_LANES; b++) bad[b] = 0;"]
+    for a, z, low, inclusive in floor_runs(checks.floors):
+        if low == 0 and not inclusive:
+            # x > 0 and finite <=> its bits are 1 .. 0x7FEFFFFFFFFFFFFF (NaN, +-inf,
+            # +-0 and negatives are not): two integer operations per value
+            lines.append("    for (b = 0; b < TF_LANES; b++) top[b] = 0;")
+            lines.append(f"    for (k = {a}; k < {z}; k++)")
+            lines.append("        for (b = 0; b < TF_LANES; b++) {")
+            lines.append("            unsigned long long u;")
+            lines.append("            memcpy(&u, &in[k][b], sizeof u);")
+            lines.append("            u -= 1;")
+            lines.append("            top[b] = u > top[b] ? u : top[b];")
+            lines.append("        }")
+            lines.append("    for (b = 0; b < TF_LANES; b++) bad[b] |= top[b] > 0x7FEFFFFFFFFFFFFEULL;")
+            continue
+        if low == float("-inf"):
+            test = "fabs(in[k][b]) < HUGE_VAL"
+        else:
+            test = f"(in[k][b] {'>=' if inclusive else '>'} {literal(Fraction(low))}) & (in[k][b] < HUGE_VAL)"
+        lines.append(f"    for (k = {a}; k < {z}; k++)")
+        lines.append(f"        for (b = 0; b < TF_LANES; b++) bad[b] |= !({test});")
+    for a, z in checks.blocks:
+        lines.append(f"    for (b = 0; b < TF_LANES; b++) s[b] = res[{a}][b];")
+        if z - a > 1:
+            lines.append(f"    for (k = {a + 1}; k < {z}; k++)")
+            lines.append("        for (b = 0; b < TF_LANES; b++) s[b] += res[k][b];")
+        lines.append(f"    for (b = 0; b < TF_LANES; b++) bad[b] |= (!(fabs(s[b] - 1.0) <= "
+                     f"{literal(Fraction(checks.tol))})) << 1;")
+    a, z = checks.finite
+    if z > a:
+        lines.append(f"    for (k = {a}; k < {z}; k++)")
+        lines.append("        for (b = 0; b < TF_LANES; b++) bad[b] |= (!(fabs(res[k][b]) < HUGE_VAL)) << 2;")
+    lines += ["    for (b = 0; b < TF_LANES; b++) st[b] = bad[b];", "}", ""]
+    return "#include <string.h>\n" + "\n".join(lines) + "\n"
+
+
+_CHECKED_DRIVER = """\
+long {name}_eval_checked(const double *x, double *out, unsigned char *status, long start, long stop)
+{{
+    TF_ALIGNED double in[TF_NI][TF_LANES];
+    TF_ALIGNED double res[TF_NR][TF_LANES];
+    unsigned char st[TF_LANES];
+    long r0, count = 0;
+    for (r0 = start; r0 < stop; r0 += TF_LANES) {{
+        int n = stop - r0 < TF_LANES ? (int)(stop - r0) : TF_LANES;
+        int b, j, k;
+        for (b = 0; b < TF_LANES; b++) {{
+            const double *row = x + (r0 + (b < n ? b : n - 1)) * (long){n_in};
+            for (j = 0; j < {n_in}; j++) in[j][b] = row[j];
+        }}
+        tf_block((const tf_row *)in, (tf_row *)res);
+        tf_check((const double (*)[TF_LANES])in, (const double (*)[TF_LANES])res, st);
+        for (b = 0; b < n; b++) {{
+            double *row = out + (r0 + b) * (long)TF_NO;
+            for (k = 0; k < TF_NO; k++) row[k] = res[k][b];
+            status[r0 + b] = st[b];
+            count += st[b] != 0;
+        }}
+    }}
+    return count;
+}}
+"""
+
+
+def emit(fn: Function, *, name: str, interface: Interface | None = None,
+         checks=None) -> dict[str, str]:
     """C99 source and header for ``fn``.
 
     Parameters
@@ -524,7 +610,15 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
     -------
     dict
         ``{"<name>.c": source, "<name>.h": header}``; the ABI is in the header.
+
+    With ``checks`` (the kernels built for the runtime; never with an
+    interface) the source also defines ``long <name>_eval_checked(x, out,
+    status, start, stop)``: every row evaluated and written, one status byte
+    per row (:class:`~treeflux.runtime.kernel.RowChecks`), the number of
+    flagged rows returned. The emitted public ABI is unchanged.
     """
+    if checks is not None and interface is not None:
+        raise ValueError("checks are for runtime kernels, which carry no interface")
     name = c_identifier(name)
     n_in, n_res = fn.n_inputs, len(fn.outputs)
     n_out = n_res - (interface.checks if interface else 0)
@@ -545,6 +639,8 @@ def emit(fn: Function, *, name: str, interface: Interface | None = None) -> dict
         helpers += "\n" + _VALIDATE.format(blocks=blocks)
     text = (_PRELUDE.format(**fields) + names_c + helpers + "\n" + body + _DRIVER.format(**fields)
             + "\n")
+    if checks is not None:
+        text += check_source(checks) + "\n" + _CHECKED_DRIVER.format(**fields) + "\n"
     digest = hashlib.sha256(text.encode()).hexdigest()  # of every line above the version
     text += f'const char {name}_version[] = "sha256:{digest}";\n'
     header = _HEADER.format(name=name, guard=f"TREEFLUX_{name.upper()}_H",
@@ -707,20 +803,31 @@ def build_from_source(sources: dict[str, str], name: str, n_inputs: int, n_outpu
     def run(X, out, start, stop):  # ctypes releases the GIL during the call
         return func(X.ctypes.data, out.ctypes.data, start, stop)
 
+    checked = None
+    if f"{name}_eval_checked(" in sources[f"{name}.c"]:
+        cfunc = getattr(lib, f"{name}_eval_checked")
+        cfunc.argtypes = [ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_long, ctypes.c_long]
+        cfunc.restype = ctypes.c_long
+
+        def checked(X, out, status, start, stop):
+            return cfunc(data_address(X), data_address(out), data_address(status), start, stop)
+
     recipe = (build_from_source, (dict(sources), name, n_inputs, n_outputs, tuple(flags)))
-    kernel = Kernel(run, n_inputs, n_outputs, backend="c", recipe=recipe, keepalive=lib)
+    kernel = Kernel(run, n_inputs, n_outputs, backend="c", recipe=recipe, keepalive=lib,
+                    checked=checked)
     first = ctypes.c_char.in_dll(lib, f"{name}_version")
     kernel.version = ctypes.cast(ctypes.addressof(first), ctypes.c_char_p).value.decode()
     return kernel
 
 
-def build(fn: Function, *, name: str = "treeflux_model") -> Kernel:
-    """Emit, compile (``cc``, cached by content hash) and load ``fn``.
+def build(fn: Function, *, name: str = "treeflux_model", checks=None) -> Kernel:
+    """Emit, compile (``cc``, cached by content hash) and load ``fn``
+    (with the checked entry of ``checks``, see :func:`emit`).
 
     Returns a :class:`~treeflux.runtime.kernel.Kernel` whose row-range
     function is ``<name>_eval_range`` called through ctypes (GIL released).
     The kernel carries ``version`` (the ``sha256:`` digest of the body)."""
-    sources = emit(fn, name=name)
+    sources = emit(fn, name=name, checks=checks)
     with progress("native compilation (C)", total=1, unit="module") as bar:
         kernel = build_from_source(sources, name, fn.n_inputs, len(fn.outputs), flags_for(fn))
         bar.update(1)

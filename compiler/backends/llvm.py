@@ -54,7 +54,7 @@ import math
 import struct
 import threading
 
-from treeflux.runtime.kernel import Kernel
+from treeflux.runtime.kernel import Kernel, data_address
 from treeflux.runtime.progress import progress
 
 from ..errors import TooLargeError
@@ -70,11 +70,13 @@ VEC = f"<{LANES} x double>"
 CHUNK_ROWS = 15_000
 MAX_ROWS = 40_000
 ENTRY = "treeflux_rows"
+CHECKED_ENTRY = "treeflux_checked"
 SPEED_LEVEL = 2  # O3 measured the same here (Q3–Q5: speed and compile time within noise)
 
 _INTRINSIC = {"exp": "llvm.exp.v8f64", "log": "llvm.log.v8f64", "sqrt": "llvm.sqrt.v8f64",
               "pow": "llvm.pow.v8f64", "max": "llvm.maximum.v8f64"}
-_ARITY = {"llvm.pow.v8f64": 2, "llvm.maximum.v8f64": 2}
+_ARITY = {"llvm.pow.v8f64": 2, "llvm.maximum.v8f64": 2, "llvm.umax.v8i64": 2}
+_TYPE = {"llvm.umax.v8i64": f"<{LANES} x i64>"}
 
 
 # ------------------------------------------------------------------ emission
@@ -353,45 +355,17 @@ def _chunks(fn: Function) -> tuple[list[str], set[str], int, int]:
     return text, uses, len(chunks), n_slots
 
 
-_DRIVER = """\
-define internal void @tf_block(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y) \
-nounwind noinline {{
-entry:
-  %xc = alloca [{n_cols_in} x {vec}], align 64
-  %yc = alloca [{n_cols_out} x {vec}], align 64
-  %t = alloca [{n_slots} x {vec}], align 64
-{gather}
-{calls}
-{scatter}
-  ret void
-}}
-
-define i32 @{entry}(ptr noalias nocapture readonly %X, ptr noalias nocapture %Y, i64 %start, \
-i64 %stop) nounwind {{
-entry:
-  %xb = alloca [{n_block_in} x double], align 64
-  %yb = alloca [{n_block_out} x double], align 64
+# Both drivers: the rows start..end of full blocks, then the tail.
+_FULL_BLOCKS = """\
   %n = sub i64 %stop, %start
   %nfull = and i64 %n, -{lanes}
   %end = add i64 %start, %nfull
   %any = icmp slt i64 %start, %end
   br i1 %any, label %body, label %tail
-body:
-  %i = phi i64 [%start, %entry], [%i1, %next]
-  %ix = mul i64 %i, {n_in}
-  %iy = mul i64 %i, {n_out}
-  %px = getelementptr inbounds double, ptr %X, i64 %ix
-  %py = getelementptr inbounds double, ptr %Y, i64 %iy
-{check_body}
-next:
-  call void @tf_block(ptr %px, ptr %py)
-  %i1 = add i64 %i, {lanes}
-  %again = icmp slt i64 %i1, %end
-  br i1 %again, label %body, label %tail
-tail:
-  %rem = sub i64 %stop, %end
-  %has = icmp sgt i64 %rem, 0
-  br i1 %has, label %pad, label %exit
+"""
+
+# The last, partial block of both drivers: its rows copied into %xb, the rest 1.0.
+_PAD = """\
 pad:
   %rx = mul i64 %rem, {n_in}
   br label %fill
@@ -407,7 +381,46 @@ copy:
   %ptx = getelementptr inbounds double, ptr %X, i64 %tx
   %bx = mul i64 %rx, 8
   call void @llvm.memcpy.p0.p0.i64(ptr align 64 %xb, ptr align 8 %ptx, i64 %bx, i1 false)
-{check_tail}
+"""
+
+_BLOCK = """\
+define internal {rtype} @{block}(ptr noalias nocapture readonly %x, ptr noalias nocapture writeonly %y) \
+nounwind noinline {{
+entry:
+  %xc = alloca [{n_cols_in} x {vec}], align 64
+  %yc = alloca [{n_cols_out} x {vec}], align 64
+  %t = alloca [{n_slots} x {vec}], align 64
+{gather}
+{calls}
+{checks}{scatter}
+  ret {ret}
+}}
+
+"""
+
+_DRIVER = """\
+define i32 @{entry}(ptr noalias nocapture readonly %X, ptr noalias nocapture %Y, i64 %start, \
+i64 %stop) nounwind {{
+entry:
+  %xb = alloca [{n_block_in} x double], align 64
+  %yb = alloca [{n_block_out} x double], align 64
+{full_blocks}body:
+  %i = phi i64 [%start, %entry], [%i1, %next]
+  %ix = mul i64 %i, {n_in}
+  %iy = mul i64 %i, {n_out}
+  %px = getelementptr inbounds double, ptr %X, i64 %ix
+  %py = getelementptr inbounds double, ptr %Y, i64 %iy
+{check_body}
+next:
+  call void @tf_block(ptr %px, ptr %py)
+  %i1 = add i64 %i, {lanes}
+  %again = icmp slt i64 %i1, %end
+  br i1 %again, label %body, label %tail
+tail:
+  %rem = sub i64 %stop, %end
+  %has = icmp sgt i64 %rem, 0
+  br i1 %has, label %pad, label %exit
+{pad}{check_tail}
 run_tail:
   call void @tf_block(ptr %xb, ptr %yb)
   %ty = mul i64 %end, {n_out}
@@ -481,7 +494,140 @@ refuse_tail:
 """
 
 
-def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, str]:
+def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
+    """The fused row checks of one block (see :class:`~treeflux.runtime.kernel.RowChecks`):
+    input column vectors in ``%xc``, output column vectors in ``%yc``; eight
+    status bytes returned. Comparisons are ordered (false on NaN), so a
+    NaN fails every test; sums fold left to right like the runtime's."""
+    vec, mask = VEC, f"<{LANES} x i1>"
+    inf, true = _splat(math.inf), "<" + ", ".join(["i1 true"] * LANES) + ">"
+    out: list[str] = []
+
+    def col(ptr: str, k: int, tag: str) -> str:
+        out.append(f"  %{tag}{k}.p = getelementptr inbounds {vec}, ptr %{ptr}, i64 {k}")
+        out.append(f"  %{tag}{k} = load {vec}, ptr %{tag}{k}.p, align 64")
+        return f"%{tag}{k}"
+
+    def finite(v: str, tag: str) -> str:
+        out.append(f"  %{tag}.a = call {vec} @llvm.fabs.v8f64({vec} {v})")
+        out.append(f"  %{tag} = fcmp olt {vec} %{tag}.a, {inf}")
+        return f"%{tag}"
+
+    def conj(acc: str, ok: str, tag: str) -> str:
+        out.append(f"  %{tag} = and {mask} {acc}, {ok}")
+        return f"%{tag}"
+
+    ok_in = true
+    ivec, umax = f"<{LANES} x i64>", "llvm.umax.v8i64"
+    top = "zeroinitializer"  # unsigned maximum of bits - 1 over the positive-and-finite columns
+    for j, (low, inclusive) in enumerate(checks.floors):
+        v = col("xc", j, "kx")
+        if low == 0 and not inclusive:
+            # x > 0 and finite ⇔ its bits are 1 .. 0x7FEFFFFFFFFFFFFF (NaN, ±inf,
+            # ±0 and negatives are not): bits − 1 (unsigned) ≤ 0x7FEFFFFFFFFFFFFE.
+            # Two integer operations per column instead of two compares.
+            out.append(f"  %kb{j} = bitcast {vec} {v} to {ivec}")
+            out.append(f"  %kc{j} = sub {ivec} %kb{j}, <{', '.join(['i64 1'] * LANES)}>")
+            out.append(f"  %kn{j} = call {ivec} @{umax}({ivec} {top}, {ivec} %kc{j})")
+            top = f"%kn{j}"
+            continue
+        if low == -math.inf:
+            ok = finite(v, f"kf{j}")
+        else:  # above the floor and below +inf: finite (ordered: false on NaN)
+            cmp = "oge" if inclusive else "ogt"
+            out.append(f"  %kl{j} = fcmp {cmp} {vec} {v}, {_splat(float(low))}")
+            out.append(f"  %ku{j} = fcmp olt {vec} {v}, {inf}")
+            ok = conj(f"%kl{j}", f"%ku{j}", f"ko{j}")
+        ok_in = ok if ok_in == true else conj(ok_in, ok, f"ki{j}")
+    if top != "zeroinitializer":
+        out.append(f"  %kpos = icmp ule {ivec} {top}, <{', '.join(['i64 9218868437227405310'] * LANES)}>")
+        ok_in = "%kpos" if ok_in == true else conj(ok_in, "%kpos", "kall")
+    ok_p = true
+    for b, (lo, hi) in enumerate(checks.blocks):
+        acc = col("yc", lo, f"kp{b}.")
+        for k in range(lo + 1, hi):
+            v = col("yc", k, f"kp{b}.")
+            out.append(f"  %ks{b}.{k} = fadd {vec} {acc}, {v}")
+            acc = f"%ks{b}.{k}"
+        out.append(f"  %kd{b} = fsub {vec} {acc}, {_splat(1.0)}")
+        out.append(f"  %kd{b}.a = call {vec} @llvm.fabs.v8f64({vec} %kd{b})")
+        out.append(f"  %kt{b} = fcmp ole {vec} %kd{b}.a, {_splat(float(checks.tol))}")
+        ok_p = f"%kt{b}" if ok_p == true else conj(ok_p, f"%kt{b}", f"kblk{b}")
+    ok_f = true
+    lo, hi = checks.finite
+    for k in range(lo, hi):
+        ok = finite(col("yc", k, "kq"), f"kg{k}")
+        ok_f = ok if ok_f == true else conj(ok_f, ok, f"kh{k}")
+    status = "zeroinitializer"
+    for bit, ok in ((1, ok_in), (2, ok_p), (4, ok_f)):
+        if ok == true:
+            continue
+        one = "<" + ", ".join([f"i8 {bit}"] * LANES) + ">"
+        out.append(f"  %kz{bit} = select {mask} {ok}, <{LANES} x i8> zeroinitializer, <{LANES} x i8> {one}")
+        out.append(f"  %kw{bit} = or <{LANES} x i8> {status}, %kz{bit}")
+        status = f"%kw{bit}"
+    out.append(f"  ret <{LANES} x i8> {status}")
+    return out
+
+
+_CHECKED_DRIVER = """\
+define i64 @{entry}(ptr noalias nocapture readonly %X, ptr noalias nocapture %Y, \
+ptr noalias nocapture %S, i64 %start, i64 %stop) nounwind {{
+entry:
+  %xb = alloca [{n_block_in} x double], align 64
+  %yb = alloca [{n_block_out} x double], align 64
+  %sb = alloca [{lanes} x i8], align 8
+{full_blocks}body:
+  %i = phi i64 [%start, %entry], [%i1, %body]
+  %cnt = phi i64 [0, %entry], [%cnt1, %body]
+  %ix = mul i64 %i, {n_in}
+  %iy = mul i64 %i, {n_out}
+  %px = getelementptr inbounds double, ptr %X, i64 %ix
+  %py = getelementptr inbounds double, ptr %Y, i64 %iy
+  %ps = getelementptr inbounds i8, ptr %S, i64 %i
+  %sv = call <{lanes} x i8> @tf_block_checked(ptr %px, ptr %py)
+  store <{lanes} x i8> %sv, ptr %ps, align 1
+  %nz = icmp ne <{lanes} x i8> %sv, zeroinitializer
+  %nzb = bitcast <{lanes} x i1> %nz to i{lanes}
+  %pc = call i{lanes} @llvm.ctpop.i{lanes}(i{lanes} %nzb)
+  %pc64 = zext i{lanes} %pc to i64
+  %cnt1 = add i64 %cnt, %pc64
+  %i1 = add i64 %i, {lanes}
+  %again = icmp slt i64 %i1, %end
+  br i1 %again, label %body, label %tail
+tail:
+  %cntb = phi i64 [0, %entry], [%cnt1, %body]
+  %rem = sub i64 %stop, %end
+  %has = icmp sgt i64 %rem, 0
+  br i1 %has, label %pad, label %exit
+{pad}  %stv = call <{lanes} x i8> @tf_block_checked(ptr %xb, ptr %yb)
+  store <{lanes} x i8> %stv, ptr %sb, align 8
+  %ty = mul i64 %end, {n_out}
+  %pty = getelementptr inbounds double, ptr %Y, i64 %ty
+  %by = mul i64 %rem, {n_out_bytes}
+  call void @llvm.memcpy.p0.p0.i64(ptr align 8 %pty, ptr align 64 %yb, i64 %by, i1 false)
+  %pts = getelementptr inbounds i8, ptr %S, i64 %end
+  call void @llvm.memcpy.p0.p0.i64(ptr align 1 %pts, ptr align 8 %sb, i64 %rem, i1 false)
+  %stz = icmp ne <{lanes} x i8> %stv, zeroinitializer
+  %remv.0 = insertelement <{lanes} x i64> poison, i64 %rem, i32 0
+  %remv = shufflevector <{lanes} x i64> %remv.0, <{lanes} x i64> poison, <{lanes} x i32> zeroinitializer
+  %real = icmp ult <{lanes} x i64> <{lane_ids}>, %remv
+  %stm = and <{lanes} x i1> %stz, %real
+  %stb = bitcast <{lanes} x i1> %stm to i{lanes}
+  %tc = call i{lanes} @llvm.ctpop.i{lanes}(i{lanes} %stb)
+  %tc64 = zext i{lanes} %tc to i64
+  %cntt = add i64 %cntb, %tc64
+  br label %exit
+exit:
+  %c = phi i64 [%cntb, %tail], [%cntt, %copy]
+  ret i64 %c
+}}
+
+declare i{lanes} @llvm.ctpop.i{lanes}(i{lanes})
+"""
+
+
+def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) -> dict[str, str]:
     """LLVM IR text of the row-range function of ``fn`` (see the module docstring).
 
     Parameters
@@ -493,6 +639,11 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, st
     check_inputs : bool, optional
         Refuse rows with an input that is not positive and finite (the status
         is row + 1 of the first such row).
+    checks : RowChecks, optional
+        Also define the checked entry ``i64 @treeflux_checked(ptr X, ptr out,
+        ptr status, i64 start, i64 stop)`` (the fused checks of
+        :class:`~treeflux.runtime.kernel.RowChecks`; returns the number of
+        flagged rows).
 
     Returns
     -------
@@ -511,8 +662,26 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, st
     parts, uses, n_chunks, n_slots = _chunks(fn)
     check = check_inputs and n_in > 0
     calls = "\n".join(f"  call void @tf_part{c}(ptr %xc, ptr %t, ptr %yc)" for c in range(n_chunks))
-    driver = _DRIVER.format(
-        calls=calls, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
+    block = dict(calls=calls, vec=VEC, n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1),
+                 n_cols_out=max(n_out, 1), gather="\n".join(_gather(n_in)),
+                 scatter="\n".join(_scatter(n_out)))
+    driver = _BLOCK.format(block="tf_block", rtype="void", ret="void", checks="", **block)
+    pad = _PAD.format(n_in=n_in, n_block_in_1=LANES * n_in)
+    full_blocks = _FULL_BLOCKS.format(lanes=LANES)
+    if checks is not None:
+        status = f"<{LANES} x i8>"
+        driver += _BLOCK.format(block="tf_block_checked", rtype=status, ret=f"{status} %status",
+                                checks=f"  %status = call {status} @tf_check(ptr %xc, ptr %yc)\n", **block)
+        driver += (f"define internal {status} @tf_check(ptr noalias nocapture readonly %xc, ptr noalias "
+                   "nocapture readonly %yc) nounwind noinline {\nentry:\n"
+                   + "\n".join(_check_lines(checks, n_in, n_out)) + "\n}\n\n")
+        driver += _CHECKED_DRIVER.format(entry=CHECKED_ENTRY, lanes=LANES, pad=pad, full_blocks=full_blocks,
+                                         lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
+                                         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
+                                         n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
+        uses |= {"llvm.fabs.v8f64", "llvm.umax.v8i64"}
+    driver += _DRIVER.format(
+        pad=pad, full_blocks=full_blocks, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
         gather="\n".join(_gather(n_in)), scatter="\n".join(_scatter(n_out)),
         n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
@@ -520,7 +689,8 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False) -> dict[str, st
         check_body=_CHECK_BODY if check else "  br label %next",
         check_tail=_CHECK_TAIL if check else "  br label %run_tail",
         refuse=_REFUSE if check else "")
-    decls = [f"declare {VEC} @{u}({', '.join([VEC] * _ARITY.get(u, 1))})" for u in sorted(uses)]
+    decls = [f"declare {_TYPE.get(u, VEC)} @{u}({', '.join([_TYPE.get(u, VEC)] * _ARITY.get(u, 1))})"
+             for u in sorted(uses)]
     decls.append("declare void @llvm.memcpy.p0.p0.i64(ptr noalias nocapture writeonly, "
                  "ptr noalias nocapture readonly, i64, i1 immarg)")
     head = (f"; treeflux steady-state kernel: {n_in} inputs, {n_out} outputs, "
@@ -586,6 +756,7 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
         engine = llvm.create_mcjit_compiler(mod, tm)  # takes ownership of tm
         engine.finalize_object()
         address = engine.get_function_address(ENTRY)
+        checked_address = engine.get_function_address(CHECKED_ENTRY) if CHECKED_ENTRY in text else 0
     proto = ctypes.CFUNCTYPE(ctypes.c_int32, ctypes.c_void_p, ctypes.c_void_p,
                              ctypes.c_int64, ctypes.c_int64)
     cfunc = proto(address)
@@ -593,14 +764,23 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
     def run(X, out, start, stop):
         return cfunc(X.ctypes.data, out.ctypes.data, int(start), int(stop))
 
+    checked = cchecked = None
+    if checked_address:
+        cchecked = ctypes.CFUNCTYPE(ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p,
+                                    ctypes.c_int64, ctypes.c_int64)(checked_address)
+
+        def checked(X, out, status, start, stop):
+            return cchecked(data_address(X), data_address(out), data_address(status), start, stop)
+
     return Kernel(run, n_inputs, n_outputs, backend="llvm",
                   recipe=(compile_text, (text, n_inputs, n_outputs)),
-                  keepalive=(engine, cfunc))
+                  keepalive=(engine, cfunc, cchecked), checked=checked)
 
 
-def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False) -> Kernel:
+def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False,
+          checks=None) -> Kernel:
     """Emit ``fn`` (see :func:`emit`) and JIT-compile it in this process."""
-    (text,) = emit(fn, name=name, check_inputs=check_inputs).values()
+    (text,) = emit(fn, name=name, check_inputs=check_inputs, checks=checks).values()
     with progress("native compilation (LLVM)", total=1, unit="module") as bar:
         kernel = compile_text(text, fn.n_inputs, len(fn.outputs))
         bar.update(1)

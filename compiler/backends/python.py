@@ -31,7 +31,7 @@ from fractions import Fraction
 from treeflux.runtime.kernel import Kernel
 
 from ..ir import Function
-from .c import MAX_OPERANDS
+from .c import MAX_OPERANDS, floor_runs
 from .naming import (Interface, probability_blocks, probability_tolerance, py_model_api, py_names,
                      stem)
 
@@ -174,19 +174,56 @@ def _check_lines(iface: Interface, n_public: int, n_all: int) -> list[str]:
     return lines
 
 
-def emit(fn: Function, *, name: str = "treeflux_model", interface: Interface | None = None
-         ) -> dict[str, str]:
+def checked_lines(checks) -> list[str]:
+    """``run_checked(X, out, status, start, stop)``: ``run``, then the fused
+    row checks of :class:`~treeflux.runtime.kernel.RowChecks` on those rows
+    (comparisons false on NaN, sums folded left to right as in the native
+    back ends); returns the number of flagged rows."""
+    lines = ["def run_checked(X, out, status, start, stop):", "    run(X, out, start, stop)",
+             "    x = X[start:stop]", "    o = out[start:stop]",
+             "    s = np.zeros(x.shape[0], dtype=np.uint8)", "    with np.errstate(invalid='ignore'):"]
+    for a, z, low, inclusive in floor_runs(checks.floors):
+        # a whole-block test first (minimum and maximum propagate NaN, which
+        # fails both comparisons); rows are looked at only when it fails
+        cmp = ">=" if inclusive and low != float("-inf") else ">"
+        floor = "-np.inf" if low == float("-inf") else repr(float(low))
+        v = f"x[:, {a}:{z}]"
+        lines += [f"        if x.shape[0] and not ({v}.min() {cmp} {floor} and {v}.max() < np.inf):",
+                  f"            s[~(({v} {cmp} {floor}) & ({v} < np.inf)).all(axis=1)] |= 1"]
+    for a, z in checks.blocks:
+        tol = repr(float(checks.tol))
+        cols = [f"o[:, {k}]" for k in range(a, z)]  # folded left to right, in bounded statements
+        lines += ["    " + ln for ln in _statements("t", "add", cols, None)] if len(cols) > 1 else [
+            f"        t = {cols[0]}"]
+        lines += ["        t = np.abs(t - 1.0)",
+                  f"        if t.size and not t.max() <= {tol}:",
+                  f"            s[~(t <= {tol})] |= 2"]
+    a, z = checks.finite
+    if z > a:
+        lines += [f"        f = o[:, {a}:{z}]",
+                  "        if f.size and not np.isfinite(f.sum()):",
+                  "            s[~np.isfinite(f).all(axis=1)] |= 4"]
+    lines += ["    status[start:stop] = s", "    return int(np.count_nonzero(s))"]
+    return lines
+
+
+def emit(fn: Function, *, name: str = "treeflux_model", interface: Interface | None = None,
+         checks=None) -> dict[str, str]:
     """``{"<stem>.py": source}``; ``interface`` (a model's names, defaults and
     layout, with ``interface.checks`` trailing rate outputs) makes the model
-    module described in the module doc."""
+    module described in the module doc. ``checks`` (runtime kernels only)
+    adds ``run_checked`` (:func:`checked_lines`)."""
     from treeflux.compiler import __version__
 
+    if checks is not None and interface is not None:
+        raise ValueError("checks are for runtime kernels, which carry no interface")
     name = stem(name)
     n_all = len(fn.outputs)
     n_pub = n_all - (interface.checks if interface else 0)
     if interface is None:
+        extra = [] if checks is None else ["", "", *checked_lines(checks)]
         body = "\n".join(["def run(X, out, start, stop):", "    x = X[start:stop]",
-                          "    o = out[start:stop]", *body_lines(fn), "    return 0"])
+                          "    o = out[start:stop]", *body_lines(fn), "    return 0", *extra])
         digest = hashlib.sha256(body.encode()).hexdigest()[:16]
         head = HEADER.format(version=__version__, name=name, n_in=fn.n_inputs,
                              n_out=n_pub, digest=digest)
@@ -208,16 +245,24 @@ def load_source(source: str, n_inputs: int, n_outputs: int) -> Kernel:
     namespace: dict = {}
     exec(compile(source, "<treeflux-generated>", "exec"), namespace)
     generated = namespace["run"]
+    generated_checked = namespace.get("run_checked")
 
     def run(X, out, start, stop):
         # Rows leaving float64 range give inf/nan here; the runtime detects
         # and recomputes them, so the warnings would only be noise.
         with np.errstate(all="ignore"):
             return generated(X, out, start, stop)
+
+    checked = None
+    if generated_checked is not None:
+        def checked(X, out, status, start, stop):
+            with np.errstate(all="ignore"):
+                return generated_checked(X, out, status, start, stop)
+
     return Kernel(run, n_inputs, n_outputs, backend="python", parallel=False,
-                  recipe=(load_source, (source, n_inputs, n_outputs)))
+                  recipe=(load_source, (source, n_inputs, n_outputs)), checked=checked)
 
 
-def build(fn: Function, *, name: str = "treeflux_model") -> Kernel:
-    (source,) = emit(fn, name=name).values()
+def build(fn: Function, *, name: str = "treeflux_model", checks=None) -> Kernel:
+    (source,) = emit(fn, name=name, checks=checks).values()
     return load_source(source, fn.n_inputs, len(fn.outputs))
