@@ -26,12 +26,12 @@
  * state does not change) so the largest is near 2^1019 / m.
  *
  * Back-substitution in reverse: x_root = 1, x_k = (sum_i x_i q(i->k)) / d_k.
- * Fast path in plain doubles; a set whose sums or x values leave
- * [2^-960, 2^1000] (where a product could overflow or an underflowed term
- * could matter) is redone with a binary exponent carried per value (mantissa
- * in [1, 2)), so no x underflows or overflows before the final normalisation
- * p = x / sum x. The choice is made per set from that set's values only.
- * Nothing is subtracted anywhere.
+ * Fast path in plain doubles. A set with a nonzero sum or an x below 2^-960
+ * (an underflowed term could matter), a non-finite value, or a total above
+ * 2^1000 (its reciprocal would leave the normal range) is redone with a
+ * binary exponent carried per value (mantissa in [1, 2)), so no x underflows
+ * or overflows before the final normalisation p = x / sum x. The choice is
+ * made per set from that set's values only. Nothing is subtracted anywhere.
  *
  * A set whose scaled rates, censored rates or in-rates fall below 2^-960 (or
  * whose scaled out-rates leave the normal range) may have lost digits to

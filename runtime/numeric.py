@@ -21,10 +21,11 @@ conditioning of the generator (O'Cinneide [2]_).
 
 The structure of the elimination depends only on the graph and the order, so
 :class:`EliminationPlan` computes it once — the fill edges and a flat
-instruction tape of int32 slot indices — and then runs the tape on many
-parameter sets: in a C kernel compiled on first use (eight parameter sets
-side by side in SIMD lanes, rows split across threads), or in numpy when no
-C compiler is available.
+instruction tape of int32 slot indices, slots of dead edges recycled for
+fill — and then runs the tape on many parameter sets: in a C kernel compiled
+on first use (8 or 16 parameter sets side by side in SIMD lanes, rows split
+across threads; each set's bits are the same whatever its lane, block width
+or thread), or in numpy when no C compiler is available.
 
 References
 ----------
@@ -53,7 +54,7 @@ from .graph import terminal_components
 from .kernel import _pool
 from .progress import progress
 
-LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
+LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
 SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
                                # 100×100 lattice orders in 2 s at 1024 vs 6 s at 4096, 7% more flops)
 # Split rows across threads only when each thread gets at least this much work,
@@ -61,6 +62,7 @@ SCORE_CAP = 1024               # above in-degree × out-degree, the fill score i
 # 512 rows took 57 µs on one thread and 73 µs on two; 4,096 rows 434 µs on one
 # and 321 µs on two — the break-even lies near 10^6 flops per thread.
 MIN_WORK_PER_THREAD = 1_000_000
+GROUP_BYTES = 1 << 20           # slot bytes of a block below which 16-set blocks are used
 TINY = 2.0 ** -960             # below this a scaled or censored rate may have lost digits to underflow
 BIG = np.finfo(np.float64).max
 _KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=fast")
@@ -514,7 +516,11 @@ class EliminationPlan:
         return "c" if self._fn is not None else "numpy"
 
     def _preferred_groups(self):
-        return int(os.environ.get("TF_GROUPS", 2))   # TEMP: measured below
+        """Vectors of LANES sets per block: 2 (16 sets, measured a few percent
+        faster on Q6 and random-200) while a block's slots stay within
+        ``GROUP_BYTES``; 1 for big tapes, whose slots are out of cache anyway
+        and whose few sets per call still fill both threads."""
+        return 2 if 2 * LANES * 8 * self.n_slots <= GROUP_BYTES else 1
 
     def _prepare(self):
         if self._struct is not None or self._requested == "numpy":
