@@ -137,16 +137,18 @@ static void *grab(int64_t count)
     return aligned_alloc(64, bytes);
 }
 
-/* Rates of sets b .. b+nl-1 into lanes (absent lanes repeat the last set);
- * returns 0 or the status of the first bad rate in row order. */
+/* Rates of sets b .. b+nl-1 into lanes (absent lanes repeat the last set),
+ * and the largest rate of each lane into hi[g]; returns 0 or the status of
+ * the first bad rate in row order. */
 static ALWAYS_INLINE int64_t load(const gth_tape *t, const double *rates, int64_t b, int nl,
-                                  v8 *V, int64_t *err, const int G)
+                                  v8 *V, v8 *hi, int64_t *err, const int G)
 {
     const int64_t m = t->m;
     double *Vs = (double *)V;
     i8 okv = SPLATI(-1);
     int bad = 0;
     for (int g = 0; g < G; g++) {
+        v8 top = {0};
         const double *row[LANES];
         for (int l = 0; l < LANES; l++) {
             int s = LANES * g + l;
@@ -161,6 +163,7 @@ static ALWAYS_INLINE int64_t load(const gth_tape *t, const double *rates, int64_
             for (int k = 0; k < LANES; k++) {
                 V[(e0 + k) * G + g] = r[k];
                 okv &= (r[k] > 0.0) & (r[k] <= DBL_MAX);
+                top = MAXV(top, r[k]);
             }
         }
         for (int64_t e = e0; e < m; e++)
@@ -169,6 +172,9 @@ static ALWAYS_INLINE int64_t load(const gth_tape *t, const double *rates, int64_
                 bad |= !(v > 0.0 && v <= DBL_MAX);
                 Vs[(e * G + g) * LANES + l] = v;
             }
+        for (int64_t e = e0; e < m; e++)
+            top = MAXV(top, V[e * G + g]);
+        hi[g] = top;
     }
     for (int l = 0; l < LANES; l++)
         bad |= !okv[l];
@@ -276,7 +282,8 @@ static ALWAYS_INLINE int64_t block(const gth_tape *t, const double *rates, doubl
     const int64_t n = t->n, m = t->m, np_ = t->n_piv;
     v8 *restrict V = w->V, *restrict Q = w->Q, *restrict D = w->D, *restrict Wb = w->W;
     v8 *restrict X = w->X, *restrict P = w->P;
-    int64_t status = load(t, rates, b, nl, V, err, G);
+    v8 hi[G];
+    int64_t status = load(t, rates, b, nl, V, hi, err, G);
     if (status)
         return status;
     memset(V + m * G, 0, (size_t)(t->n_phys - m) * G * sizeof(v8));
@@ -285,12 +292,6 @@ static ALWAYS_INLINE int64_t block(const gth_tape *t, const double *rates, doubl
      * near 2^(1019 - log2 m): the steady state is unchanged, every pivot and
      * censored rate stays below 2^1021 (no overflow, normal reciprocals), and
      * the small ones get the most headroom above the normal range. */
-    v8 hi[G];
-    for (int g = 0; g < G; g++)
-        hi[g] = V[g];
-    for (int64_t e = 1; e < m; e++)
-        for (int g = 0; g < G; g++)
-            hi[g] = MAXV(hi[g], V[e * G + g]);
     v8 f[G];
     for (int g = 0; g < G; g++) {
         i8 sh = 1019 - LOG2M(m) - EXPO(hi[g]);

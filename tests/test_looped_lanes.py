@@ -15,30 +15,10 @@ from treeflux.runtime.errors import EvaluationError
 from treeflux.runtime.numeric import EliminationPlan
 
 from .schemes import mp_steady_state
+from .test_numeric import log_uniform, max_rel_err, random_scheme
 
 needs_c = pytest.mark.skipif(numeric._library() is None, reason="no working C compiler")
 WIDEST = numeric.LANES * 4                     # sets in the widest block (4 vectors of 8)
-
-
-def random_scheme(n, m, seed):
-    """Strongly connected: a random Hamiltonian cycle plus random chords."""
-    rng = np.random.default_rng(seed)
-    perm = rng.permutation(n)
-    edges = {(int(perm[i]), int(perm[(i + 1) % n])) for i in range(n)}
-    while len(edges) < m:
-        i, j = rng.integers(n, size=2)
-        if i != j:
-            edges.add((int(i), int(j)))
-    return sorted(edges)
-
-
-def log_uniform(rng, shape, lo, hi):
-    return 10.0 ** rng.uniform(np.log10(lo), np.log10(hi), size=shape)
-
-
-def max_rel_err(values, reference):
-    with mpmath.workdps(60):
-        return max(float(abs(mpmath.mpf(float(v)) - r) / abs(r)) for v, r in zip(values, reference))
 
 
 def solve(plan, rates, groups, threads=1):
