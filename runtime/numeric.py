@@ -470,15 +470,23 @@ class EliminationPlan:
         (forward elimination, back-substitution and normalisation).
     backend : str
         ``"c"`` or ``"numpy"``.
+    n_slots : int
+        Value slots a block of the C kernel works in (edges alive at once:
+        slots of dead edges are reused for fill).
+    groups : int
+        Vectors of ``LANES`` sets per block the C kernel prefers (1, 2 or 4);
+        fewer when a call has few sets. A set's bits never depend on it.
 
     Notes
     -----
     State reduction of Grassmann, Taksar & Heyman [1]_ in continuous time
     (see the module docstring); entrywise relative accuracy follows from the
     absence of subtraction [2]_. Each set's rates are scaled by a power of two
-    (its largest near 2**1019/m), back-substitution carries a binary exponent
-    per value, so no ratio x_k = ρ_k/ρ_root underflows or overflows before the
-    final normalisation. A set whose float64 intermediates fall near the
+    (its largest near 2**1019/m). Back-substitution runs in plain doubles; a
+    set whose sums or ratios x_k = ρ_k/ρ_root leave [2**-960, DBL_MAX] (or
+    whose total passes 2**1000) is redone, in the C kernel, with a binary
+    exponent carried per value (the numpy kernel always carries it), so no
+    ratio underflows or overflows before the final normalisation. A set whose float64 intermediates fall near the
     bottom of the normal range (rates spread over many hundreds of orders of
     magnitude) is flagged by the kernel and recomputed by
     :func:`exact_steady_state`.
