@@ -152,9 +152,13 @@ def sympy_route(n: int, edges, cols):
 LANES = 8
 
 
-def elimination_pattern(n: int, edges):
+def elimination_pattern(n: int, edges, order=None):
     """Greedy Markowitz order (fewest in·out products, fewest new edges on
     ties, lowest index last) and the fill pattern of continuous-time GTH.
+    ``order`` (a permutation of the states, the kept state last) replaces the
+    greedy choice: this greedy rescans every state at every step (O(n²)
+    Python calls), hours on the 100×100 lattice, so the benches give large
+    schemes treeflux's order — the same flops for both kernels.
 
     Returns a dict of int64 arrays describing, per eliminated state, the slots
     of its remaining out-edges (summed into the pivot d_k and scaled by 1/d_k),
@@ -169,13 +173,16 @@ def elimination_pattern(n: int, edges):
     for i, j in edges:
         out[i].add(j)
         inn[j].add(i)
+    given = None if order is None else [int(v) for v in order]
     alive = set(range(n))
     order, piv_out, upd, piv_in = [], [], [], []
-    for _ in range(n - 1):
-        def cost(k):
-            new = sum(1 for i in inn[k] for j in out[k] if i != j and j not in out[i])
-            return (len(inn[k]) * len(out[k]), new, -k)
-        k = min(alive, key=cost)
+
+    def cost(k):
+        new = sum(1 for i in inn[k] for j in out[k] if i != j and j not in out[i])
+        return (len(inn[k]) * len(out[k]), new, -k)
+
+    for step in range(n - 1):
+        k = min(alive, key=cost) if given is None else given[step]
         alive.discard(k)
         order.append(k)
         piv_out.append([slot[(k, j)] for j in sorted(out[k])])
@@ -305,10 +312,10 @@ class NumbaElimination:
     ``numba.prange``. Arithmetic is subtraction-free, as in treeflux.
     """
 
-    def __init__(self, n: int, edges, *, lanes: int = LANES):
+    def __init__(self, n: int, edges, *, lanes: int = LANES, order=None):
         self.n = n
         self.lanes = lanes
-        self.pattern = elimination_pattern(n, edges)
+        self.pattern = elimination_pattern(n, edges, order)
         self.flops = self.pattern["flops"]
         self._kernel = _numba_kernel(lanes)
 

@@ -21,10 +21,11 @@ conditioning of the generator (O'Cinneide [2]_).
 
 The structure of the elimination depends only on the graph and the order, so
 :class:`EliminationPlan` computes it once — the fill edges and a flat
-instruction tape of int32 slot indices — and then runs the tape on many
-parameter sets: in a C kernel compiled on first use (eight parameter sets
-side by side in SIMD lanes, rows split across threads), or in numpy when no
-C compiler is available.
+instruction tape of int32 slot indices, slots of dead edges recycled for
+fill — and then runs the tape on many parameter sets: in a C kernel compiled
+on first use (8, 16 or 32 parameter sets side by side in SIMD lanes, rows split
+across threads; each set's bits are the same whatever its lane, block width
+or thread), or in numpy when no C compiler is available.
 
 References
 ----------
@@ -53,7 +54,7 @@ from .graph import terminal_components
 from .kernel import _pool
 from .progress import progress
 
-LANES = 8                      # parameter sets per block (one AVX-512 register of doubles)
+LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
 SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
                                # 100×100 lattice orders in 2 s at 1024 vs 6 s at 4096, 7% more flops)
 # Split rows across threads only when each thread gets at least this much work,
@@ -61,9 +62,10 @@ SCORE_CAP = 1024               # above in-degree × out-degree, the fill score i
 # 512 rows took 57 µs on one thread and 73 µs on two; 4,096 rows 434 µs on one
 # and 321 µs on two — the break-even lies near 10^6 flops per thread.
 MIN_WORK_PER_THREAD = 1_000_000
+GROUP_BYTES = 32 << 10          # slot bytes of a block up to which wider blocks are used
 TINY = 2.0 ** -960             # below this a scaled or censored rate may have lost digits to underflow
 BIG = np.finfo(np.float64).max
-_KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno")
+_KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=fast")
 
 # ---------------------------------------------------------------- structure
 
@@ -177,7 +179,7 @@ class EliminationCost:
     fill : int
         Edges created by the elimination (lower bound when not complete).
     updates : int
-        Update triples V[dst] += V[a]·V[b] of the tape (lower bound when not complete).
+        Updates V[i→j] += q(i→k)·q(k→j)/d_k of the tape (lower bound when not complete).
     complete : bool
         False when counting stopped because ``flops`` passed the budget.
     """
@@ -191,9 +193,9 @@ class EliminationCost:
     @property
     def tape_bytes(self) -> int:
         """Memory the looped numeric path's tape takes (lower bound when not complete):
-        12 bytes per update triple plus 4 per grid entry while it is built, and
+        4 bytes per update target plus 4 per grid entry while it is built, and
         index arrays of 4–8 bytes per slot and pivot."""
-        return 16 * self.updates + 24 * (self.m + self.fill) + 40 * self.n
+        return 8 * self.updates + 24 * (self.m + self.fill) + 40 * self.n
 
 
 def elimination_cost(n, edges, *, root=None, budget=None, terminal=None) -> EliminationCost:
@@ -304,11 +306,23 @@ def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
 
 
 def _symbolic(n, src, dst, order):
-    """Replay the elimination on slots; returns the tape arrays, fill and flops.
+    """Replay the elimination on physical slots; returns the tape, the number
+    of slots, the fill and the flops.
 
-    Slots 0..m-1 hold the scheme's edges in input order and fill edges follow
-    in order of creation. Each pivot's updates become triples (see
-    :func:`_triples`).
+    Slots 0..m-1 hold the scheme's edges in input order. An edge dies when one
+    of its states is eliminated (the kernel zeroes its slot as it reads it),
+    and its slot goes to a stack of free slots; a fill edge takes the most
+    recently freed slot, or a new one. So the slots a block touches are about
+    as many as the edges alive at once, not all edges ever made.
+
+    Tape arrays (int32 indices, int64 pointers), per pivot p eliminating
+    ``piv_state[p]``: its out-edge slots ``out_slot[out_ptr[p]:out_ptr[p+1]]``
+    (targets j in increasing order), its in-edge slots, sources and skip
+    columns ``in_slot``, ``in_src``, ``in_skip`` over ``in_ptr`` (sources i in
+    increasing order; ``in_skip`` is the column of j == i among the outs, or
+    the number of outs), and the update targets ``upd``: for each in-edge in
+    turn, the slot of edge i→j for every out-edge j ≠ i (the update
+    V[i→j] += q(i→k)·q(k→j)/d_k). ``upd_ptr[p]`` is where pivot p's targets start.
     """
     m = len(src)
     out_map = [dict() for _ in range(n)]
@@ -316,22 +330,27 @@ def _symbolic(n, src, dst, order):
     for e, (i, j) in enumerate(zip(src, dst)):
         out_map[i][j] = e
         in_map[j][i] = e
-    n_slots = m
+    n_phys, fill = m, 0
+    free = []                                    # slots of dead edges, reused last-freed first
     out_ptr, in_ptr, upd_ptr = [0], [0], [0]
-    out_slot, in_slot, in_src = [], [], []
-    upd = array("i")                             # 4 bytes an entry: big grids stay small
+    out_slot, in_slot, in_src, in_skip = array("i"), array("i"), array("i"), array("i")
+    grid = array("i")                            # 4 bytes an entry: big grids stay small
     adds = muls = divs = 0
     for k in order[:-1]:
         outs = sorted(out_map[k].items())
         ins = sorted(in_map[k].items())
         o_states = [j for j, _ in outs]
+        column = {j: c for c, j in enumerate(o_states)}
         out_slot.extend(s for _, s in outs)
         in_slot.extend(s for _, s in ins)
         in_src.extend(i for i, _ in ins)
-        for i, _ in ins:
+        in_skip.extend(column.get(i, len(o_states)) for i, _ in ins)
+        for i, s in ins:
             del out_map[i][k]
-        for j, _ in outs:
+            free.append(s)
+        for j, s in outs:
             del in_map[j][k]
+            free.append(s)
         adds += len(outs) - 1
         divs += 1
         muls += len(outs)                       # t_j = q(k→j) / d_k
@@ -341,14 +360,19 @@ def _symbolic(n, src, dst, order):
             fresh = o_set.difference(oi)
             fresh.discard(i)
             for j in sorted(fresh):
-                oi[j] = n_slots
-                in_map[j][i] = n_slots
-                n_slots += 1
+                if free:
+                    s = free.pop()
+                else:
+                    s, n_phys = n_phys, n_phys + 1
+                oi[j] = s
+                in_map[j][i] = s
+            fill += len(fresh)
             get = oi.get
-            upd.extend([get(j, -1) for j in o_states])   # i itself is never in oi: -1
+            grid.extend([get(j, -1) for j in o_states])   # i itself is never in oi: -1
             pairs = len(o_states) - (i in o_set)
             muls += pairs
             adds += pairs - len(fresh)
+        upd_ptr.append(upd_ptr[-1] + len(ins) * len(outs) - sum(i in o_set for i, _ in ins))
         # back-substitution for k: len(ins) products, their sum, one division
         muls += len(ins)
         adds += max(len(ins) - 1, 0)
@@ -357,63 +381,34 @@ def _symbolic(n, src, dst, order):
         in_map[k] = {}
         out_ptr.append(len(out_slot))
         in_ptr.append(len(in_slot))
-        upd_ptr.append(len(upd))
     adds += n - 1                               # Σ x
     divs += 1
     muls += n                                   # p = x · (1/Σ x)
+    grid = np.frombuffer(grid, dtype=np.int32)
     tape = {
         "piv_state": np.asarray(order[:-1], dtype=np.int32),
         "out_ptr": np.asarray(out_ptr, dtype=np.int64),
-        "out_slot": np.asarray(out_slot, dtype=np.int32),
+        "out_slot": np.frombuffer(out_slot, dtype=np.int32),
         "in_ptr": np.asarray(in_ptr, dtype=np.int64),
-        "in_slot": np.asarray(in_slot, dtype=np.int32),
-        "in_src": np.asarray(in_src, dtype=np.int32),
+        "in_slot": np.frombuffer(in_slot, dtype=np.int32),
+        "in_src": np.frombuffer(in_src, dtype=np.int32),
+        "in_skip": np.frombuffer(in_skip, dtype=np.int32),
+        "upd_ptr": np.asarray(upd_ptr, dtype=np.int64),
+        "upd": np.ascontiguousarray(grid[grid >= 0]),
     }
-    tape["upd_ptr"], tape["upd"] = _triples(tape, np.asarray(upd_ptr, dtype=np.int64),
-                                            np.frombuffer(upd, dtype=np.int32))
-    return tape, n_slots, n_slots - m, adds + muls + divs
-
-
-def _triples(tape, grid_ptr, grid):
-    """Flatten each pivot's in × out grid of target slots into (dst, a, b) triples.
-
-    Row r, column c of pivot p's grid is the update V[dst] += V[a] · V[b] with
-    a = in slot r and b = (scaled) out slot c; the i = j entries (-1) are
-    dropped. One flat loop per pivot keeps the kernel free of short inner loops.
-    """
-    n_piv = tape["piv_state"].size
-    no = np.diff(tape["out_ptr"])
-    sizes = np.diff(grid_ptr)
-    counts = np.zeros(n_piv, dtype=np.int64)
-    parts = []
-    lo = 0
-    while lo < n_piv:                      # pivots in chunks of about 2**21 grid entries
-        hi = int(np.searchsorted(grid_ptr, grid_ptr[lo] + (1 << 21), side="right"))
-        hi = min(max(hi - 1, lo + 1), n_piv)
-        g0, g1 = grid_ptr[lo], grid_ptr[hi]
-        piv = np.repeat(np.arange(lo, hi), sizes[lo:hi])
-        local = np.arange(g0, g1) - np.repeat(grid_ptr[lo:hi], sizes[lo:hi])
-        width = np.maximum(no[piv], 1)
-        grid_part = grid[g0:g1]
-        keep = grid_part >= 0
-        a = tape["in_slot"][tape["in_ptr"][piv] + local // width]
-        b = tape["out_slot"][tape["out_ptr"][piv] + local % width]
-        parts.append(np.stack([grid_part[keep], a[keep], b[keep]], axis=1).astype(np.int32))
-        counts[lo:hi] = np.bincount(piv[keep] - lo, minlength=hi - lo)
-        lo = hi
-    ptr = np.zeros(n_piv + 1, dtype=np.int64)
-    np.cumsum(counts, out=ptr[1:])
-    triples = np.concatenate(parts) if parts else np.zeros((0, 3), dtype=np.int32)
-    return ptr, np.ascontiguousarray(triples)
+    return tape, n_phys, fill, adds + muls + divs
 
 
 # ------------------------------------------------------------------- kernel
 
+TAPE_VERSION = 2               # the tape layout gth_kernel.c reads (GTH_TAPE_VERSION there)
+_TAPE_ARRAYS = ("piv_state", "out_ptr", "out_slot", "in_ptr", "in_slot", "in_src", "in_skip", "upd")
+
+
 class _Tape(ctypes.Structure):
-    _fields_ = [("n", ctypes.c_int64), ("m", ctypes.c_int64), ("n_slots", ctypes.c_int64),
-                ("n_piv", ctypes.c_int64), ("root", ctypes.c_int64)] + [
-        (name, ctypes.c_void_p) for name in
-        ("piv_state", "out_ptr", "out_slot", "in_ptr", "in_slot", "in_src", "upd_ptr", "upd")]
+    _fields_ = [(name, ctypes.c_int64) for name in
+                ("version", "n", "m", "n_phys", "n_piv", "root", "n_in", "max_out")] + [
+        (name, ctypes.c_void_p) for name in _TAPE_ARRAYS]
 
 
 _LIBS: dict = {}
@@ -426,20 +421,23 @@ def kernel_source() -> str:
 
 
 def _library():
-    """The compiled kernel's entry point, or None when no C compiler works."""
+    """The compiled kernel's entry point, or None when no C compiler works
+    (or the library found speaks another tape version)."""
     cc = os.environ.get("CC", "cc")
     with _LIB_LOCK:
         if cc not in _LIBS:
             from .cache import CompileError, shared_library
             try:
-                path = shared_library(kernel_source(), flags=_KERNEL_FLAGS, name="gth_kernel")
-                fn = ctypes.CDLL(str(path)).gth_solve
-            except (CompileError, OSError):
+                path = shared_library(kernel_source(), flags=_KERNEL_FLAGS, name=f"gth_kernel_v{TAPE_VERSION}")
+                lib = ctypes.CDLL(str(path))
+                lib.gth_version.restype = ctypes.c_int64
+                fn = lib.gth_solve if lib.gth_version() == TAPE_VERSION else None
+            except (CompileError, OSError, AttributeError):
                 fn = None
-            else:
+            if fn is not None:
                 fn.restype = ctypes.c_int64
                 fn.argtypes = [ctypes.POINTER(_Tape), ctypes.c_void_p, ctypes.c_void_p,
-                               ctypes.c_int64, ctypes.c_int64, ctypes.c_void_p]
+                               ctypes.c_int64, ctypes.c_int64, ctypes.c_int64, ctypes.c_void_p]
             _LIBS[cc] = fn
         return _LIBS[cc]
 
@@ -472,15 +470,23 @@ class EliminationPlan:
         (forward elimination, back-substitution and normalisation).
     backend : str
         ``"c"`` or ``"numpy"``.
+    n_slots : int
+        Value slots a block of the C kernel works in (edges alive at once:
+        slots of dead edges are reused for fill).
+    groups : int
+        Vectors of ``LANES`` sets per block the C kernel prefers (1, 2 or 4);
+        fewer when a call has few sets. A set's bits never depend on it.
 
     Notes
     -----
     State reduction of Grassmann, Taksar & Heyman [1]_ in continuous time
     (see the module docstring); entrywise relative accuracy follows from the
     absence of subtraction [2]_. Each set's rates are scaled by a power of two
-    (its largest near 2**1019/m), back-substitution carries a binary exponent
-    per value, so no ratio x_k = ρ_k/ρ_root underflows or overflows before the
-    final normalisation. A set whose float64 intermediates fall near the
+    (its largest near 2**1019/m). Back-substitution runs in plain doubles; a
+    set whose sums or ratios x_k = ρ_k/ρ_root leave [2**-960, DBL_MAX] (or
+    whose total passes 2**1000) is redone, in the C kernel, with a binary
+    exponent carried per value (the numpy kernel always carries it), so no
+    ratio underflows or overflows before the final normalisation. A set whose float64 intermediates fall near the
     bottom of the normal range (rates spread over many hundreds of orders of
     magnitude) is flagged by the kernel and recomputed by
     :func:`exact_steady_state`.
@@ -501,10 +507,13 @@ class EliminationPlan:
         self.edges = list(zip(src, dst))
         self.order = order
         self._tape, self.n_slots, self.fill, self.flops = _symbolic(n, src, dst, order)
-        self.max_pairs = int(max(np.diff(self._tape["upd_ptr"]).max(initial=0), 1))
+        t = self._tape
+        self.max_grid = int(max((np.diff(t["in_ptr"]) * np.diff(t["out_ptr"])).max(initial=0), 1))
+        self.max_out = int(max(np.diff(t["out_ptr"]).max(initial=0), 1))
         if backend not in (None, "c", "numpy"):
             raise EvaluationError(f"backend must be 'c' or 'numpy', got {backend!r}")
         self._requested = backend
+        self.groups = self._preferred_groups()
         self._fn = None
         self._struct = None
 
@@ -513,6 +522,17 @@ class EliminationPlan:
         """``"c"`` when the compiled kernel is (or will be) used, else ``"numpy"``."""
         self._prepare()
         return "c" if self._fn is not None else "numpy"
+
+    def _preferred_groups(self):
+        """Vectors of LANES sets per block: the most (4, 2 or 1) whose slots
+        stay within ``GROUP_BYTES``, about the first-level data cache. Measured
+        here (ns per set, 1 thread, groups 1 / 2 / 4): Q4 142 / 125 / 119,
+        Q5 434 / 383 / 389, Q6 1,580 / 1,736 / 1,852; random 1,000 states
+        535 / 864 (groups 1 / 2). Bits do not depend on it."""
+        g = 4
+        while g > 1 and LANES * 8 * g * self.n_slots > GROUP_BYTES:
+            g //= 2
+        return g
 
     def _prepare(self):
         if self._struct is not None or self._requested == "numpy":
@@ -524,9 +544,8 @@ class EliminationPlan:
             self._requested = "numpy"
             return
         t = self._tape
-        self._struct = _Tape(self.n, self.m, self.n_slots, self.n - 1, self.order[-1],
-                             *(t[k].ctypes.data for k in ("piv_state", "out_ptr", "out_slot", "in_ptr",
-                                                          "in_slot", "in_src", "upd_ptr", "upd")))
+        self._struct = _Tape(TAPE_VERSION, self.n, self.m, self.n_slots, self.n - 1, self.order[-1],
+                             t["in_slot"].size, self.max_out, *(t[k].ctypes.data for k in _TAPE_ARRAYS))
         self._fn = fn
 
     # ------------------------------------------------------------ evaluation
@@ -580,16 +599,19 @@ class EliminationPlan:
 
     def _run_c(self, rates, out, threads):
         N = rates.shape[0]
-        blocks = -(-N // LANES)
         limit = threads or os.cpu_count() or 1
-        count = int(max(1, min(limit, blocks, N * self.flops // MIN_WORK_PER_THREAD)))
-        cuts = [min(N, LANES * (blocks * c // count)) for c in range(count + 1)]
+        count = int(max(1, min(limit, -(-N // LANES), N * self.flops // MIN_WORK_PER_THREAD)))
+        groups = self._groups(-(-N // count))
+        width = LANES * groups
+        blocks = -(-N // width)
+        count = min(count, blocks)
+        cuts = [min(N, width * (blocks * c // count)) for c in range(count + 1)]
         tape = ctypes.byref(self._struct)
         rp, op = rates.ctypes.data, out.ctypes.data
 
         def run(a, b):
             err = np.zeros(3, dtype=np.int64)
-            status = self._fn(tape, rp, op, a, b, err.ctypes.data)
+            status = self._fn(tape, rp, op, a, b, groups, err.ctypes.data)
             return tuple(err) if status else None
 
         if count == 1:
@@ -601,28 +623,39 @@ class EliminationPlan:
             kind, row, what = min(bad, key=lambda r: r[1])
             self._raise(int(kind), int(row), int(what), rates)
 
+    def _groups(self, per_thread):
+        """Vectors of LANES sets per block for a thread given ``per_thread``
+        sets: the plan's preference (:attr:`groups`), fewer when the thread
+        has too few sets to fill the lanes. Bits do not depend on it."""
+        g = self.groups
+        while g > 1 and LANES * g > per_thread:
+            g //= 2
+        return g
+
     def _run_numpy(self, rates, out):
         ok = (rates > 0) & (rates <= np.finfo(np.float64).max)
         if not ok.all():
             row, e = np.argwhere(~ok)[0]
             self._raise(1, int(row), int(e), rates)
         N = rates.shape[0]
-        chunk = max(1, (1 << 22) // (3 * self.max_pairs + self.n_slots))
+        chunk = max(1, (1 << 22) // (2 * self.max_grid + self.n_slots + self._tape["in_slot"].size))
         for a in range(0, N, chunk):
             b = min(N, a + chunk)
-            out[a:b] = self._numpy_block(rates[a:b], a)
+            out[a:b] = self._numpy_block(rates[a:b])
 
-    def _numpy_block(self, rates, row0):
+    def _numpy_block(self, rates):
         """The tape on a block of rows in numpy, as the C kernel does it (see
-        gth_kernel.c): power-of-two scaling, underflow flags, exponents
-        carried through back-substitution. Flagged rows come back NaN."""
+        gth_kernel.c): power-of-two scaling, dead slots zeroed for reuse,
+        underflow flags, exponents carried through back-substitution.
+        Flagged rows come back NaN."""
         t = self._tape
         n, m, N = self.n, self.m, rates.shape[0]
-        V = np.zeros((self.n_slots + 1, N))
+        V = np.zeros((self.n_slots, N))
         V[:m] = rates.T
         V[:m] *= np.ldexp(1.0, 1019 - _log2_ceil(m) - np.frexp(V[:m].max(axis=0))[1] + 1)
         ok = np.ones(N, dtype=bool)
         D = np.empty((n - 1, N))
+        Q = np.empty((t["in_slot"].size, N))
         op, ip, up = t["out_ptr"], t["in_ptr"], t["upd_ptr"]
         for p in range(n - 1):
             oo = t["out_slot"][op[p]:op[p + 1]]
@@ -634,10 +667,17 @@ class EliminationPlan:
             with np.errstate(all="ignore"):
                 w = vo * (1.0 / d)
             ok &= (w >= np.finfo(np.float64).tiny).all(axis=0)
-            V[oo] = w
-            tri = t["upd"][up[p]:up[p + 1]]
-            if tri.size:
-                V[tri[:, 0]] += V[tri[:, 1]] * V[tri[:, 2]]
+            V[oo] = 0.0
+            a, b = ip[p], ip[p + 1]
+            ii = t["in_slot"][a:b]
+            q = Q[a:b] = V[ii]
+            ok &= (q >= TINY).all(axis=0)
+            V[ii] = 0.0
+            if up[p + 1] > up[p]:
+                keep = np.ones((b - a, oo.size), dtype=bool)
+                rows = np.flatnonzero(t["in_skip"][a:b] < oo.size)
+                keep[rows, t["in_skip"][a:b][rows]] = False
+                V[t["upd"][up[p]:up[p + 1]]] += (q[:, None, :] * w[None, :, :])[keep]
         XM = np.zeros((n, N))
         XE = np.full((n, N), -(1 << 40), dtype=np.int64)
         root = self.order[-1]
@@ -647,10 +687,8 @@ class EliminationPlan:
             a, b = ip[p], ip[p + 1]
             if a == b:
                 continue
-            q = V[t["in_slot"][a:b]]
-            ok &= (q >= TINY).all(axis=0)
             src = t["in_src"][a:b]
-            term, e = np.frexp(XM[src] * q)
+            term, e = np.frexp(XM[src] * Q[a:b])
             g = XE[src] + e
             top = g.max(axis=0)
             acc = np.ldexp(term, np.maximum(g - top, -4000)).sum(axis=0)
