@@ -49,8 +49,9 @@ def test_two_workers_against_one_process(benchmark):
     from treeflux.runtime.sampling import sample
 
     m = _compile("python")
-    _, probe = _timed(lambda: sample(m, 2000, seed=1, response=RESPONSE))
-    n = int(2000 * TARGET_SECONDS / probe)
+    sample(m, 500, seed=1, response=RESPONSE)                 # first-call costs (imports) out of the probe
+    _, probe = _timed(lambda: sample(m, 5000, seed=1, response=RESPONSE))
+    n = int(5000 * TARGET_SECONDS / probe)
     load_before = os.getloadavg()[0]
     local, t_one = _timed(lambda: sample(m, n, seed=7, response=RESPONSE))
     holder = {}

@@ -126,9 +126,11 @@ def spawned_workers(parent) -> list:
     found = []
     for p in parent.children(recursive=True):
         try:
-            if "spawn_main" in " ".join(p.cmdline()):
+            cmd = " ".join(p.cmdline())
+            forked = "forkserver" in cmd and "forkserver" in " ".join(p.parent().cmdline())
+            if "spawn_main" in cmd or forked:        # spawned, or forked by the fork server
                 found.append(p)
-        except psutil.Error:
+        except (psutil.Error, AttributeError):
             pass
     return found
 
