@@ -102,6 +102,7 @@ class _TimedKernel:
     def __init__(self, kernel, clock):
         self._kernel = kernel
         self._call = clock.wrap(kernel.__call__)
+        self.check = clock.wrap(kernel.check)      # the checked entry the public calls use
 
     def __call__(self, *args, **kwargs):
         return self._call(*args, **kwargs)

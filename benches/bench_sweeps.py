@@ -8,7 +8,7 @@ response features of ``polymerase_bound`` to ``c`` over [1e-2, 1e4] (41 grid
 points per curve, then EC solves and slope searches: ~320 model evaluations
 per sample).
 
-- Scaling: a sweep sized to take about 12 s in this process (numpy back end,
+- Scaling: in a fresh Python process (as `treeflux sample` runs), a sweep sized to take about 12 s (numpy back end,
   ``sample(...)`` with no workers), then the same sweep with ``workers=2``
   (a LocalCluster of two single-threaded processes, started and closed inside
   the timed call). Goal on this 2-core machine: ≥ 1.7× (ratio of wall times).
@@ -45,23 +45,50 @@ def _timed(fn):
     return out, time.perf_counter() - t0
 
 
-def test_two_workers_against_one_process(benchmark):
-    from treeflux.runtime.sampling import sample
+_SWEEP_SCRIPT = r"""
+import json, sys, time
+import numpy as np
+from treeflux.compiler import compile_scheme, load
+from treeflux.runtime.sampling import sample
 
-    m = _compile("python")
-    sample(m, 500, seed=1, response=RESPONSE)                 # first-call costs (imports) out of the probe
-    _, probe = _timed(lambda: sample(m, 5000, seed=1, response=RESPONSE))
-    n = int(5000 * TARGET_SECONDS / probe)
+def main():
+    model_path, response, target = sys.argv[1], json.loads(sys.argv[2]), float(sys.argv[3])
+    m = compile_scheme(load(model_path), backend="python")
+    sample(m, 500, seed=1, response=response)                # first-call costs out of the probe
+    t = time.perf_counter(); sample(m, 5000, seed=1, response=response)
+    n = int(5000 * target / (time.perf_counter() - t))
+    t = time.perf_counter(); one = sample(m, n, seed=7, response=response); t_one = time.perf_counter() - t
+    t = time.perf_counter(); two = sample(m, n, seed=7, response=response, workers=2)
+    t_two = time.perf_counter() - t
+    print(json.dumps({"samples": n, "one_process_s": t_one, "two_workers_s": t_two,
+                      "equal": bool(np.array_equal(one["data"], two["data"], equal_nan=True))}))
+
+if __name__ == "__main__":
+    main()
+"""
+
+
+def test_two_workers_against_one_process(benchmark, tmp_path):
+    # In a fresh process, as `treeflux sample` runs: a process that has run the
+    # Numba baselines keeps their worker threads busy for a while, which took
+    # a core from the two workers (1.54x there against 1.71x fresh, measured).
+    import json
+    import subprocess
+    import sys
+
+    script = tmp_path / "sweep.py"
+    script.write_text(_SWEEP_SCRIPT)
     load_before = os.getloadavg()[0]
-    local, t_one = _timed(lambda: sample(m, n, seed=7, response=RESPONSE))
     holder = {}
 
-    def two():
-        holder["r"] = sample(m, n, seed=7, response=RESPONSE, workers=2)
+    def run():
+        out = subprocess.run([sys.executable, str(script), str(MODEL), json.dumps(RESPONSE),
+                              str(TARGET_SECONDS)], capture_output=True, text=True, check=True)
+        holder.update(json.loads(out.stdout.strip().splitlines()[-1]))
 
-    benchmark.pedantic(two, rounds=1, iterations=1)
-    t_two = benchmark.stats.stats.median
-    assert np.array_equal(local["data"], holder["r"]["data"], equal_nan=True)
+    benchmark.pedantic(run, rounds=1, iterations=1)
+    n, t_one, t_two = holder["samples"], holder["one_process_s"], holder["two_workers_s"]
+    assert holder["equal"]
     benchmark.extra_info.update({
         "samples": n, "one_process_s": t_one, "two_workers_s": t_two,
         "speedup_two_workers": t_one / t_two, "goal_speedup": 1.7,
