@@ -370,8 +370,8 @@ def response_summaries(model, base: np.ndarray, *, observable: str, input: str,
                               f"{'' if N == 1 else f', parameter set {r}'}); nothing to normalize")
     # ------------------------------------------------ tails and limits
     lower_x, upper_x = axis.tail(-1), axis.tail(+1)
-    TL = curves.tail(lower_x, axis.settle_from(-1), Y)
-    TU = curves.tail(upper_x, axis.settle_from(+1), np.hstack([Y, TL]))
+    TL = curves.tail(lower_x, axis.settle_from, Y)
+    TU = curves.tail(upper_x, axis.settle_from, np.hstack([Y, TL]))
     seq_u = np.concatenate([axis.to_u(lower_x[::-1]), u_grid, axis.to_u(upper_x)])
     F = np.hstack([TL[:, ::-1], Y, TU])                    # ascending in x
     with np.errstate(invalid="ignore"):

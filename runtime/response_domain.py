@@ -88,11 +88,10 @@ class Axis:
         """True when the domain's lower end can be evaluated directly (x = 0)."""
         return self.domain == "non-negative"
 
-    def settle_from(self, side: int) -> int:
-        """Index of the last dense tail point on one side: a curve may stop
-        there once its limit is established (12 decades, or 3 range widths,
-        examined at the dense spacing first)."""
-        return _DENSE_STEPS - 1
+    #: Index of the last dense tail point (either side): a curve may stop
+    #: there once its limit is established (12 decades, or 3 range widths,
+    #: examined at the dense spacing first).
+    settle_from = _DENSE_STEPS - 1
 
     def tail(self, side: int) -> np.ndarray:
         """Points beyond the range on one side (−1 below, +1 above), ordered

@@ -67,7 +67,7 @@ def test_summaries_equal_the_full_walk(monkeypatch):
     base = np.array([[10 ** rng.uniform(-1, 1) for _ in m.symbols] for _ in range(40)])
     kw = dict(observable="bound", input="c", lo=1e-3, hi=1e3, points=31)
     settled = response_summaries(m, base, **kw)
-    monkeypatch.setattr(response_domain.Axis, "settle_from", lambda self, side: 10 ** 6)
+    monkeypatch.setattr(response_domain.Axis, "settle_from", 10 ** 6)
     full = response_summaries(m, base, **kw)
     assert (full["limit_upper_at"] > settled["limit_upper_at"]).all()   # the walk did stop early
     for key in ("ec10", "ec50", "ec90", "hill_effective", "max_slope", "limit_upper", "limit_lower"):
