@@ -370,6 +370,15 @@ def _sigint_ignored():
         signal.signal(signal.SIGINT, previous)
 
 
+# Worker housekeeping that takes CPU from blocks on a small machine: the
+# statistical profiler (a stack sample every 10 ms) and the memory and system
+# monitors (every 100 and 500 ms).
+QUIET_WORKERS = {"distributed.worker.profile.enabled": False,
+                 "distributed.worker.memory.monitor-interval": "1s",
+                 "distributed.admin.system-monitor.interval": "2s",
+                 "distributed.admin.tick.interval": "500ms",
+                 "distributed.scheduler.work-stealing": False}
+
 # Modules a worker needs for a block, imported once by the fork server.
 _WORKER_MODULES = ["treeflux.runtime.sampling", "treeflux.runtime.response", "treeflux.runtime.model"]
 
@@ -395,7 +404,8 @@ def _new_cluster(workers: int):
 
     method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
     with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
-                          "distributed.worker.multiprocessing-method": method}):
+                          "distributed.worker.multiprocessing-method": method,
+                          **QUIET_WORKERS}):
         if method == "forkserver":
             from distributed.utils import get_mp_context
 
@@ -407,13 +417,33 @@ def _new_cluster(workers: int):
                                dashboard_address=":0", silence_logs=logging.CRITICAL)
 
 
+# While the cluster starts, this process runs its blocks in this many pieces,
+# so that it hands the rest of the block in hand over soon after the cluster
+# is up instead of finishing it on a core the workers need.
+STARTUP_PIECES = 4
+
+
+def _balanced(blocks: list, workers: int) -> list:
+    """``blocks`` with the last 2 · ``workers`` of them halved: the workers
+    then run out of work at nearly the same moment (the table is the same for
+    any cut of the rows into blocks)."""
+    k = max(0, len(blocks) - 2 * workers)
+    tail = []
+    for a, b in blocks[k:]:
+        m = (a + b + 1) // 2
+        tail += [(a, m), (m, b)] if a < m < b else [(a, b)]
+    return blocks[:k] + tail
+
+
 def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
     """Start a LocalCluster of ``workers`` single-threaded processes in the
-    background and run blocks here from the front while it starts (a start
-    costs each worker about a second of imports). The moment the cluster is
-    up, the starting thread hands every block this process has not claimed
-    to it, so the workers begin while this process finishes the block in
-    hand; the cluster is closed (workers stopped) however this ends."""
+    background and run blocks here from the front, in
+    :data:`STARTUP_PIECES` pieces each, while it starts (a start costs each
+    worker about a second of imports). The moment the cluster is up, the
+    starting thread hands every block this process has not claimed to it
+    (the last ones halved, :func:`_balanced`), and this process hands over
+    the rest of the block in hand after the piece it is on. The cluster is
+    closed (workers stopped) however this ends."""
     dd = _distributed()
     started: dict = {}
     lock = threading.Lock()
@@ -424,32 +454,44 @@ def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
             started["cluster"] = _new_cluster(workers)
             started["client"] = dd.Client(started["cluster"])
             with lock:
-                started["from"] = k = claimed[0]
-            if k < len(blocks):
-                started["futures"] = _submit(started["client"], model, sweep, blocks[k:])
+                k = claimed[0]
+                started["rest"] = rest = _balanced(blocks[k:], workers)
+                started["futures"] = _submit(started["client"], model, sweep, rest) if rest else []
+                started["up"] = True
         except BaseException as exc:  # noqa: BLE001 — handed to the caller's thread
             started["error"] = exc
 
-    parts: list = []
+    here: list = []                   # (first row, table rows) run in this process
+    leftover = None
     try:
         with _sigint_ignored():
             thread = threading.Thread(target=start, name="treeflux-cluster-start", daemon=True)
             thread.start()
-            while True:
+            while leftover is None:
                 with lock:
-                    if "from" in started or "error" in started or claimed[0] >= len(blocks):
+                    if "up" in started or "error" in started or claimed[0] >= len(blocks):
                         break
                     i = claimed[0]
                     claimed[0] += 1
                 a, b = blocks[i]
-                parts.append(run_block(model, sweep, a, b))
-                bar.update(b - a)
+                step = -(-(b - a) // STARTUP_PIECES)
+                for p in range(a, b, step):
+                    if p > a and "up" in started:
+                        leftover = (p, b)
+                        break
+                    q = min(b, p + step)
+                    here.append((p, run_block(model, sweep, p, q)))
+                    bar.update(q - p)
             thread.join()
         if "error" in started:
             raise EvaluationError(f"could not start {workers} local workers: {started['error']}")
-        if "futures" in started:
-            parts += _collect(started["client"], started["futures"], blocks[len(parts):], bar)
-        return parts
+        ranges, futures = list(started.get("rest", [])), list(started.get("futures", []))
+        if leftover is not None:
+            ranges.append(leftover)
+            futures += _submit(started["client"], model, sweep, [leftover], priority=1)  # next
+        if futures:
+            here += zip((a for a, _ in ranges), _collect(started["client"], futures, ranges, bar))
+        return [part for _, part in sorted(here, key=lambda item: item[0])]
     finally:
         if started.get("client") is not None:
             started["client"].close()
@@ -474,8 +516,9 @@ def _on_cluster(client, model, sweep: Sweep, blocks, bar) -> list:
     return _collect(client, _submit(client, model, sweep, blocks), blocks, bar)
 
 
-def _submit(client, model, sweep: Sweep, blocks) -> list:
-    return [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
+def _submit(client, model, sweep: Sweep, blocks, priority: int = 0) -> list:
+    return [client.submit(_remote_block, model, sweep, a, b, pure=False, priority=priority)
+            for a, b in blocks]
 
 
 def _collect(client, futures, blocks, bar) -> list:
