@@ -69,7 +69,9 @@ FORMAT = 2
 # Version of the ABI of the kernels stored in the cache (part of every key, so
 # an entry built for another ABI is never found, never loaded). 2: kernels
 # built for the runtime carry the checked entry (fused row checks, status bytes).
-KERNEL_ABI = 2
+# 3: LLVM kernels evaluate blocks of 16 rows (entries keep working, but a
+# cached 8-row kernel would hide the faster code from every later compile).
+KERNEL_ABI = 3
 MAX_PINS = 256
 # The Cache Directory Tagging Specification's signature (an open standard:
 # backup tools skip folders holding this file), then treeflux's own lines.

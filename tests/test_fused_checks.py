@@ -6,7 +6,7 @@ byte per row; the runtime looks at the status only when rows are flagged.
 These tests compare that path with the one it replaced — the same model with
 ``_use_fused = False`` runs the checks as separate numpy passes around the
 raw kernel — and demand the same bits and the same refusals, word for word,
-for bad rows placed at random and in every lane of the 8-row blocks (every
+for bad rows placed at random and in every lane of the 8- and 16-row blocks (every
 residue mod 16), on steady_state, observables and jacobian. Values of
 recomputed rows are checked against an mpmath LU solve at 50 digits
 (tests/schemes.py, an outside reference).

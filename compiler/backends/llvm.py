@@ -1,16 +1,21 @@
-"""LLVM back end: the IR as explicit ``<8 x double>`` code, JIT-compiled with llvmlite.
+"""LLVM back end: the IR as explicit ``<16 x double>`` code, JIT-compiled with llvmlite.
 
 Layout
 ------
-Rows of the input array are processed in blocks of ``LANES = 8`` parameter
+Rows of the input array are processed in blocks of ``LANES = 16`` parameter
 sets side by side: every IR row becomes one vector instruction whose lane k
 belongs to parameter set k of the block (an array-of-structures-of-arrays
-layout). A block of X is row-major (8 rows × n_inputs), so each tile of 8
-input columns is loaded as 8 row vectors and transposed with three stages of
-two-source shuffles into 8 column vectors (columns beyond the last full tile
-are gathered lane by lane); outputs are transposed back the same way. A
-tail of fewer than 8 rows is copied into a padded local block (the padding
-lanes hold 1.0 and are discarded).
+layout). The code generator splits each ``<16 x double>`` instruction into
+two 512-bit ones, so every block carries two independent chains: the
+elimination's divisions and sums are long dependency chains, and a second
+chain fills their latency (Q3: 27 → 23 ns per set on one core against 8
+lanes; 32 lanes gained nothing more; measured here). A block of X is
+row-major (16 rows × n_inputs), so each tile of 8 rows × 8 input columns is
+loaded as 8 row vectors and transposed with three stages of two-source
+shuffles into the 8-lane halves of 8 column vectors (columns beyond the last
+full tile are gathered lane by lane); outputs are transposed back the same
+way. A tail of fewer than 16 rows is copied into a padded local block (the
+padding lanes hold 1.0 and are discarded).
 
 The emitted module defines one exported function::
 
@@ -60,8 +65,10 @@ from treeflux.runtime.progress import progress
 from ..errors import TooLargeError
 from ..ir import BINARY, NARY, OPS, UNARY, Function
 
-LANES = 8
+LANES = 16           # parameter sets per block: two independent 8-lane chains per instruction
+TILE = 8             # rows and columns of one transpose tile (one 512-bit register of doubles)
 VEC = f"<{LANES} x double>"
+TVEC = f"<{TILE} x double>"
 # Measured here (2 shared cores, LLVM 22): a 19,000-row body compiles in 2.3 s
 # whole and no faster in 3,000-row chunks (the crossing values cost loads,
 # stores and dead-store analysis); a 60,000-row body took 11 s whole, 8 s in
@@ -73,10 +80,12 @@ ENTRY = "treeflux_rows"
 CHECKED_ENTRY = "treeflux_checked"
 SPEED_LEVEL = 2  # O3 measured the same here (Q3–Q5: speed and compile time within noise)
 
-_INTRINSIC = {"exp": "llvm.exp.v8f64", "log": "llvm.log.v8f64", "sqrt": "llvm.sqrt.v8f64",
-              "pow": "llvm.pow.v8f64", "max": "llvm.maximum.v8f64"}
-_ARITY = {"llvm.pow.v8f64": 2, "llvm.maximum.v8f64": 2, "llvm.umax.v8i64": 2}
-_TYPE = {"llvm.umax.v8i64": f"<{LANES} x i64>"}
+_V = f"v{LANES}f64"
+FABS, UMAX = f"llvm.fabs.{_V}", f"llvm.umax.v{LANES}i64"
+_INTRINSIC = {"exp": f"llvm.exp.{_V}", "log": f"llvm.log.{_V}", "sqrt": f"llvm.sqrt.{_V}",
+              "pow": f"llvm.pow.{_V}", "max": f"llvm.maximum.{_V}"}
+_ARITY = {f"llvm.pow.{_V}": 2, f"llvm.maximum.{_V}": 2, UMAX: 2}
+_TYPE = {UMAX: f"<{LANES} x i64>"}
 
 
 # ------------------------------------------------------------------ emission
@@ -259,43 +268,50 @@ def _transpose_masks(b: int) -> tuple[str, str]:
     AVX-512, e.g. ``vpermt2pd``).
     """
     bit = 1 << b
-    lo = [l if not l & bit else LANES + (l & ~bit) for l in range(LANES)]
-    hi = [l | bit if not l & bit else LANES + l for l in range(LANES)]
+    lo = [l if not l & bit else TILE + (l & ~bit) for l in range(TILE)]
+    hi = [l | bit if not l & bit else TILE + l for l in range(TILE)]
     fmt = lambda m: "<" + ", ".join(f"i32 {v}" for v in m) + ">"  # noqa: E731
     return fmt(lo), fmt(hi)
 
 
 def _transpose(prefix: str, rows: list[str], out: list[str]) -> list[str]:
-    """Emit an 8 × 8 transpose of the vectors ``rows``; returns the new names."""
+    """Emit an 8 × 8 transpose of the ``TVEC`` vectors ``rows``; returns the new names."""
     cur = rows
     for b in range(3):
         lo, hi = _transpose_masks(b)
-        nxt = [""] * LANES
-        for a in range(LANES):
+        nxt = [""] * TILE
+        for a in range(TILE):
             if a & (1 << b):
                 continue
             a1 = a | (1 << b)
             nxt[a], nxt[a1] = f"%{prefix}.{b}.{a}", f"%{prefix}.{b}.{a1}"
-            out.append(f"  {nxt[a]} = shufflevector {VEC} {cur[a]}, {VEC} {cur[a1]}, <8 x i32> {lo}")
-            out.append(f"  {nxt[a1]} = shufflevector {VEC} {cur[a]}, {VEC} {cur[a1]}, <8 x i32> {hi}")
+            out.append(f"  {nxt[a]} = shufflevector {TVEC} {cur[a]}, {TVEC} {cur[a1]}, <{TILE} x i32> {lo}")
+            out.append(f"  {nxt[a1]} = shufflevector {TVEC} {cur[a]}, {TVEC} {cur[a1]}, <{TILE} x i32> {hi}")
         cur = nxt
     return cur
 
 
 def _gather(n_in: int) -> list[str]:
-    """Row-major block %x (8 rows × n_in) → column vectors in %xc."""
+    """Row-major block %x (LANES rows × n_in) → column vectors in %xc.
+
+    Each tile of 8 rows × 8 columns is loaded as 8 row vectors, transposed,
+    and its columns stored as the 8-lane part of their column vectors that
+    belongs to those rows."""
     out: list[str] = []
-    full = n_in - n_in % LANES
-    for c0 in range(0, full, LANES):
-        rows = []
-        for r in range(LANES):
-            out.append(f"  %xr{c0}.{r}.p = getelementptr inbounds double, ptr %x, i64 {r * n_in + c0}")
-            out.append(f"  %xr{c0}.{r} = load {VEC}, ptr %xr{c0}.{r}.p, align 8")
-            rows.append(f"%xr{c0}.{r}")
-        cols = _transpose(f"xt{c0}", rows, out)
-        for a in range(LANES):
-            out.append(f"  %xs{c0 + a} = getelementptr inbounds {VEC}, ptr %xc, i64 {c0 + a}")
-            out.append(f"  store {VEC} {cols[a]}, ptr %xs{c0 + a}, align 64")
+    full = n_in - n_in % TILE
+    for c0 in range(0, full, TILE):
+        for h in range(LANES // TILE):
+            rows = []
+            for r in range(TILE):
+                t = f"{c0}.{h}.{r}"
+                out.append(f"  %xr{t}.p = getelementptr inbounds double, ptr %x, i64 {(h * TILE + r) * n_in + c0}")
+                out.append(f"  %xr{t} = load {TVEC}, ptr %xr{t}.p, align 8")
+                rows.append(f"%xr{t}")
+            cols = _transpose(f"xt{c0}.{h}", rows, out)
+            for a in range(TILE):
+                t = f"{c0 + a}.{h}"
+                out.append(f"  %xs{t} = getelementptr inbounds double, ptr %xc, i64 {(c0 + a) * LANES + h * TILE}")
+                out.append(f"  store {TVEC} {cols[a]}, ptr %xs{t}, align 64")
     for j in range(full, n_in):  # columns beyond the last full tile: lane by lane
         prev = "poison"
         for k in range(LANES):
@@ -309,19 +325,22 @@ def _gather(n_in: int) -> list[str]:
 
 
 def _scatter(n_out: int) -> list[str]:
-    """Column vectors in %yc → row-major block %y (8 rows × n_out)."""
+    """Column vectors in %yc → row-major block %y (LANES rows × n_out), tile by tile."""
     out: list[str] = []
-    full = n_out - n_out % LANES
-    for c0 in range(0, full, LANES):
-        cols = []
-        for a in range(LANES):
-            out.append(f"  %yl{c0 + a}.p = getelementptr inbounds {VEC}, ptr %yc, i64 {c0 + a}")
-            out.append(f"  %yl{c0 + a} = load {VEC}, ptr %yl{c0 + a}.p, align 64")
-            cols.append(f"%yl{c0 + a}")
-        rows = _transpose(f"yt{c0}", cols, out)
-        for r in range(LANES):
-            out.append(f"  %yr{c0}.{r} = getelementptr inbounds double, ptr %y, i64 {r * n_out + c0}")
-            out.append(f"  store {VEC} {rows[r]}, ptr %yr{c0}.{r}, align 8")
+    full = n_out - n_out % TILE
+    for c0 in range(0, full, TILE):
+        for h in range(LANES // TILE):
+            cols = []
+            for a in range(TILE):
+                t = f"{c0 + a}.{h}"
+                out.append(f"  %yl{t}.p = getelementptr inbounds double, ptr %yc, i64 {(c0 + a) * LANES + h * TILE}")
+                out.append(f"  %yl{t} = load {TVEC}, ptr %yl{t}.p, align 64")
+                cols.append(f"%yl{t}")
+            rows = _transpose(f"yt{c0}.{h}", cols, out)
+            for r in range(TILE):
+                t = f"{c0}.{h}.{r}"
+                out.append(f"  %yr{t} = getelementptr inbounds double, ptr %y, i64 {(h * TILE + r) * n_out + c0}")
+                out.append(f"  store {TVEC} {rows[r]}, ptr %yr{t}, align 8")
     for j in range(full, n_out):
         out.append(f"  %yl{j}.p = getelementptr inbounds {VEC}, ptr %yc, i64 {j}")
         out.append(f"  %yl{j} = load {VEC}, ptr %yl{j}.p, align 64")
@@ -509,7 +528,7 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
         return f"%{tag}{k}"
 
     def finite(v: str, tag: str) -> str:
-        out.append(f"  %{tag}.a = call {vec} @llvm.fabs.v8f64({vec} {v})")
+        out.append(f"  %{tag}.a = call {vec} @{FABS}({vec} {v})")
         out.append(f"  %{tag} = fcmp olt {vec} %{tag}.a, {inf}")
         return f"%{tag}"
 
@@ -518,7 +537,7 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
         return f"%{tag}"
 
     ok_in = true
-    ivec, umax = f"<{LANES} x i64>", "llvm.umax.v8i64"
+    ivec, umax = f"<{LANES} x i64>", UMAX
     top = "zeroinitializer"  # unsigned maximum of bits - 1 over the positive-and-finite columns
     for j, (low, inclusive) in enumerate(checks.floors):
         v = col("xc", j, "kx")
@@ -550,7 +569,7 @@ def _check_lines(checks, n_in: int, n_out: int) -> list[str]:
             out.append(f"  %ks{b}.{k} = fadd {vec} {acc}, {v}")
             acc = f"%ks{b}.{k}"
         out.append(f"  %kd{b} = fsub {vec} {acc}, {_splat(1.0)}")
-        out.append(f"  %kd{b}.a = call {vec} @llvm.fabs.v8f64({vec} %kd{b})")
+        out.append(f"  %kd{b}.a = call {vec} @{FABS}({vec} %kd{b})")
         out.append(f"  %kt{b} = fcmp ole {vec} %kd{b}.a, {_splat(float(checks.tol))}")
         ok_p = f"%kt{b}" if ok_p == true else conj(ok_p, f"%kt{b}", f"kblk{b}")
     ok_f = true
@@ -679,7 +698,7 @@ def emit(fn: Function, *, name: str, check_inputs: bool = False, checks=None) ->
                                          lane_ids=", ".join(f"i64 {k}" for k in range(LANES)), n_in=n_in, n_out=n_out,
                                          n_block_in=LANES * max(n_in, 1), n_block_in_1=LANES * n_in,
                                          n_block_out=LANES * max(n_out, 1), n_out_bytes=8 * n_out)
-        uses |= {"llvm.fabs.v8f64", "llvm.umax.v8i64"}
+        uses |= {FABS, UMAX}
     driver += _DRIVER.format(
         pad=pad, full_blocks=full_blocks, entry=ENTRY, vec=VEC, lanes=LANES, n_in=n_in, n_out=n_out,
         n_slots=max(n_slots, 1), n_cols_in=max(n_in, 1), n_cols_out=max(n_out, 1),
