@@ -11,8 +11,8 @@ per sample).
 - Scaling: in a fresh Python process (as `treeflux sample` runs), a sweep sized to take about 12 s (numpy back end,
   ``sample(...)`` with no workers), then the same sweep with ``workers=2``
   (a LocalCluster of two single-threaded processes, started and closed inside
-  the timed call). Goal on this 2-core machine: ≥ 1.7× (ratio of wall times).
-  The two tables must be equal bit for bit.
+  the timed call), three such pairs alternated. Goal on this 2-core machine:
+  ≥ 1.7× (median ratio of wall times). The tables must be equal bit for bit.
 - One million samples of the same response features with ``workers=2`` on
   the LLVM back end. Goal: < 60 s.
 
@@ -45,6 +45,8 @@ def _timed(fn):
     return out, time.perf_counter() - t0
 
 
+PAIRS = 3   # one-process and two-worker runs, alternated; the goal is read on the median ratio
+
 _SWEEP_SCRIPT = r"""
 import json, sys, time
 import numpy as np
@@ -52,16 +54,19 @@ from treeflux.compiler import compile_scheme, load
 from treeflux.runtime.sampling import sample
 
 def main():
-    model_path, response, target = sys.argv[1], json.loads(sys.argv[2]), float(sys.argv[3])
+    model_path, response, target, pairs = sys.argv[1], json.loads(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
     m = compile_scheme(load(model_path), backend="python")
     sample(m, 500, seed=1, response=response)                # first-call costs out of the probe
     t = time.perf_counter(); sample(m, 5000, seed=1, response=response)
     n = int(5000 * target / (time.perf_counter() - t))
-    t = time.perf_counter(); one = sample(m, n, seed=7, response=response); t_one = time.perf_counter() - t
-    t = time.perf_counter(); two = sample(m, n, seed=7, response=response, workers=2)
-    t_two = time.perf_counter() - t
-    print(json.dumps({"samples": n, "one_process_s": t_one, "two_workers_s": t_two,
-                      "equal": bool(np.array_equal(one["data"], two["data"], equal_nan=True))}))
+    runs = []
+    for k in range(pairs):
+        t = time.perf_counter(); one = sample(m, n, seed=7 + k, response=response); t_one = time.perf_counter() - t
+        t = time.perf_counter(); two = sample(m, n, seed=7 + k, response=response, workers=2)
+        t_two = time.perf_counter() - t
+        runs.append({"one_process_s": t_one, "two_workers_s": t_two,
+                     "equal": bool(np.array_equal(one["data"], two["data"], equal_nan=True))})
+    print(json.dumps({"samples": n, "runs": runs}))
 
 if __name__ == "__main__":
     main()
@@ -72,7 +77,11 @@ def test_two_workers_against_one_process(benchmark, tmp_path):
     # In a fresh process, as `treeflux sample` runs: a process that has run the
     # Numba baselines keeps their worker threads busy for a while, which took
     # a core from the two workers (1.54x there against 1.71x fresh, measured).
+    # One pair of runs moves by several per cent with the machine's load
+    # (1.70-1.78x in three pairs, measured), so PAIRS pairs are alternated and
+    # the median ratio is the figure.
     import json
+    import statistics
     import subprocess
     import sys
 
@@ -83,22 +92,28 @@ def test_two_workers_against_one_process(benchmark, tmp_path):
 
     def run():
         out = subprocess.run([sys.executable, str(script), str(MODEL), json.dumps(RESPONSE),
-                              str(TARGET_SECONDS)], capture_output=True, text=True, check=True)
+                              str(TARGET_SECONDS), str(PAIRS)], capture_output=True, text=True, check=True)
         holder.update(json.loads(out.stdout.strip().splitlines()[-1]))
 
     benchmark.pedantic(run, rounds=1, iterations=1)
-    n, t_one, t_two = holder["samples"], holder["one_process_s"], holder["two_workers_s"]
-    assert holder["equal"]
+    n, runs = holder["samples"], holder["runs"]
+    assert all(r["equal"] for r in runs)
+    ratios = [r["one_process_s"] / r["two_workers_s"] for r in runs]
+    ratio = statistics.median(ratios)
+    t_one = statistics.median(r["one_process_s"] for r in runs)
+    t_two = statistics.median(r["two_workers_s"] for r in runs)
     benchmark.extra_info.update({
-        "samples": n, "one_process_s": t_one, "two_workers_s": t_two,
-        "speedup_two_workers": t_one / t_two, "goal_speedup": 1.7,
-        "goal": {"label": f"sweep of {n:,} response samples (~{TARGET_SECONDS:g} s): two workers / one process",
-                 "target": "≥ 1.7×", "measured": f"{t_one / t_two:.2f}× ({t_one:.1f} s / {t_two:.1f} s, "
-                 "cluster start included)", "met": t_one / t_two >= 1.7},
+        "samples": n, "runs": runs, "ratios": ratios, "one_process_s": t_one, "two_workers_s": t_two,
+        "speedup_two_workers": ratio, "goal_speedup": 1.7,
+        "goal": {"label": f"sweep of {n:,} response samples (~{TARGET_SECONDS:g} s): two workers / one process, "
+                          f"median of {len(runs)} alternated pairs",
+                 "target": "≥ 1.7×", "measured": f"{ratio:.2f}× ({min(ratios):.2f}–{max(ratios):.2f}; medians "
+                 f"{t_one:.1f} s / {t_two:.1f} s, cluster start included)", "met": ratio >= 1.7},
         "load_average_before": load_before, "load_average_after": os.getloadavg()[0],
     })
-    print(f"\nsweep of {n} response samples: one process {t_one:.2f} s, two workers {t_two:.2f} s, "
-          f"ratio {t_one / t_two:.2f} (goal >= 1.7; load {load_before:.1f} -> {os.getloadavg()[0]:.1f})")
+    print(f"\nsweep of {n} response samples, {len(runs)} pairs: ratios "
+          f"{', '.join(f'{r:.2f}' for r in ratios)}, median {ratio:.2f} (goal >= 1.7; "
+          f"load {load_before:.1f} -> {os.getloadavg()[0]:.1f})")
 
 
 def test_one_million_response_samples(benchmark):

@@ -515,7 +515,18 @@ def _remove_entry(top: Path, key: str, secret: bytes) -> str:
         os.close(fd)
 
 
-def shared_library(c_source: str, *, flags=("-O3", "-march=native"), libs=("-lm",),
+# Code-generation flags for the building machine. gcc's tuning for Ice Lake
+# and later cores prefers 256-bit vectors in the code it vectorises itself
+# (row loads and stores, loops over lanes; explicit 8-double statements stay
+# 512-bit either way). Asking it to prefer 512 gave the same bits and, per set
+# (interleaved A/B, this machine): C back end Q3 41.6 -> 37.1 ns, Q4 117 -> 106
+# ns; Cython Q3 33.2 -> 26.1 ns, Q4 83.1 -> 71.6 ns (one thread, 1,024 sets);
+# the looped path unchanged. The flag is x86's; other hosts get -march=native.
+NATIVE_FLAGS = ("-march=native",) + (("-mprefer-vector-width=512",)
+                                     if platform.machine().lower() in ("x86_64", "amd64") else ())
+
+
+def shared_library(c_source: str, *, flags=("-O3", *NATIVE_FLAGS), libs=("-lm",),
                    name: str = "kernel") -> Path:
     """Compile C source into a shared library through the cache; returns its path.
 

@@ -51,6 +51,7 @@ import numpy as np
 
 from .errors import EvaluationError
 from .graph import terminal_components
+from .cache import NATIVE_FLAGS
 from .kernel import _pool
 from .progress import progress
 
@@ -65,7 +66,7 @@ MIN_WORK_PER_THREAD = 1_000_000
 GROUP_BYTES = 32 << 10          # slot bytes of a block up to which wider blocks are used
 TINY = 2.0 ** -960             # below this a scaled or censored rate may have lost digits to underflow
 BIG = np.finfo(np.float64).max
-_KERNEL_FLAGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=fast")
+_KERNEL_FLAGS = ("-O3", *NATIVE_FLAGS, "-fno-math-errno", "-ffp-contract=fast")
 
 # ---------------------------------------------------------------- structure
 

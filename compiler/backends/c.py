@@ -42,6 +42,7 @@ import heapq
 import re
 from fractions import Fraction
 
+from treeflux.runtime.cache import NATIVE_FLAGS
 from treeflux.runtime.kernel import Kernel, data_address
 from treeflux.runtime.progress import progress
 
@@ -57,7 +58,7 @@ POWI_LIMIT = 64
 #: Most operands of one emitted sum, product or maximum; longer ones are split.
 MAX_OPERANDS = 32
 
-BASE_FLAGS = ("-std=c99", "-march=native", "-fno-math-errno")
+BASE_FLAGS = ("-std=c99", *NATIVE_FLAGS, "-fno-math-errno")
 #: Bodies with more computed rows than this compile at -O1 (see :func:`flags_for`).
 O1_ROWS = 5_000
 

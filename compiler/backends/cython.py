@@ -47,6 +47,7 @@ from functools import lru_cache
 from pathlib import Path
 
 from treeflux.runtime import cache
+from treeflux.runtime.cache import NATIVE_FLAGS
 from treeflux.runtime.kernel import Kernel
 from treeflux.runtime.progress import progress
 
@@ -58,7 +59,7 @@ from .naming import (Interface, probability_blocks, probability_tolerance, py_mo
 #: reference evaluator's and the C back end's (which compiles as ISO C99).
 #: ``-fno-inline-functions-called-once`` keeps the body's parts separate
 #: functions (each is called once, from ``_block``).
-COMPILE_ARGS = ("-O3", "-march=native", "-fno-math-errno", "-ffp-contract=off",
+COMPILE_ARGS = ("-O3", *NATIVE_FLAGS, "-fno-math-errno", "-ffp-contract=off",
                 "-fno-inline-functions-called-once")
 
 
