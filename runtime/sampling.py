@@ -383,6 +383,23 @@ QUIET_WORKERS = {"distributed.worker.profile.enabled": False,
 _WORKER_MODULES = ["treeflux.runtime.sampling", "treeflux.runtime.response", "treeflux.runtime.model"]
 
 
+def _start_fork_server() -> bool:
+    """Start this process's fork server, if the platform has one and it is not
+    running yet, preloading dask.distributed and the modules a worker needs
+    (:data:`_WORKER_MODULES`); returns whether workers can be forked from it.
+    It returns at once: the server imports in its own process, on the other
+    core, while this one imports dask itself (about 0.3 s each)."""
+    import multiprocessing
+
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        return False
+    import multiprocessing.forkserver as fs
+
+    fs.set_forkserver_preload(["distributed", *_WORKER_MODULES])
+    fs.ensure_running()
+    return True
+
+
 def _new_cluster(workers: int):
     """A LocalCluster of single-threaded worker processes.
 
@@ -398,29 +415,14 @@ def _new_cluster(workers: int):
       went from 1.63–1.68× to 1.75–1.83× the one-process time, measured).
     """
     dd = _distributed()
-    import multiprocessing
-
     import dask.config
 
-    method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
+    method = "forkserver" if _start_fork_server() else "spawn"
     with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
                           "distributed.worker.multiprocessing-method": method,
                           **QUIET_WORKERS}):
-        if method == "forkserver":
-            from distributed.utils import get_mp_context
-
-            ctx = get_mp_context()                  # sets dask's own preload list first
-            import multiprocessing.forkserver as fs
-            preload = list(getattr(fs._forkserver, "_preload_modules", None) or [])
-            ctx.set_forkserver_preload(preload + [m for m in _WORKER_MODULES if m not in preload])
         return dd.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                dashboard_address=":0", silence_logs=logging.CRITICAL)
-
-
-# While the cluster starts, this process runs its blocks in this many pieces,
-# so that it hands the rest of the block in hand over soon after the cluster
-# is up instead of finishing it on a core the workers need.
-STARTUP_PIECES = 4
 
 
 def _balanced(blocks: list, workers: int) -> list:
@@ -436,67 +438,30 @@ def _balanced(blocks: list, workers: int) -> list:
 
 
 def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
-    """Start a LocalCluster of ``workers`` single-threaded processes in the
-    background and run blocks here from the front, in
-    :data:`STARTUP_PIECES` pieces each, while it starts (a start costs each
-    worker about a second of imports). The moment the cluster is up, the
-    starting thread hands every block this process has not claimed to it
-    (the last ones halved, :func:`_balanced`), and this process hands over
-    the rest of the block in hand after the piece it is on. The cluster is
-    closed (workers stopped) however this ends."""
-    dd = _distributed()
-    started: dict = {}
-    lock = threading.Lock()
-    claimed = [0]                     # blocks this process has taken, from the front
+    """Start a LocalCluster of ``workers`` single-threaded processes, run the
+    blocks on it (the last ones halved, :func:`_balanced`) and close it
+    however this ends.
 
-    def start():
+    This process computes nothing while the cluster starts. It used to run
+    blocks meanwhile, but on two cores those blocks took the GIL and a core
+    from the start (dask's import, the scheduler's and nannies' event loop,
+    the fork server's imports) and slowed it more than they gained: 0.65 s to
+    the first task against 0.45 s idle, 2.40 s against 2.32 s for a 2 s sweep,
+    1.65-1.77x against 1.77-1.81x for a 12 s one (measured here)."""
+    ranges = _balanced(list(blocks), workers)
+    with _sigint_ignored():
+        _start_fork_server()
+        dd = _distributed()
         try:
-            started["cluster"] = _new_cluster(workers)
-            started["client"] = dd.Client(started["cluster"])
-            with lock:
-                k = claimed[0]
-                started["rest"] = rest = _balanced(blocks[k:], workers)
-                started["futures"] = _submit(started["client"], model, sweep, rest) if rest else []
-                started["up"] = True
-        except BaseException as exc:  # noqa: BLE001 — handed to the caller's thread
-            started["error"] = exc
-
-    here: list = []                   # (first row, table rows) run in this process
-    leftover = None
+            cluster = _new_cluster(workers)
+        except Exception as exc:  # noqa: BLE001 — any failure to start is one line
+            first = (str(exc).splitlines() or [type(exc).__name__])[0]
+            raise EvaluationError(f"could not start {workers} local workers: {first}") from None
     try:
-        with _sigint_ignored():
-            thread = threading.Thread(target=start, name="treeflux-cluster-start", daemon=True)
-            thread.start()
-            while leftover is None:
-                with lock:
-                    if "up" in started or "error" in started or claimed[0] >= len(blocks):
-                        break
-                    i = claimed[0]
-                    claimed[0] += 1
-                a, b = blocks[i]
-                step = -(-(b - a) // STARTUP_PIECES)
-                for p in range(a, b, step):
-                    if p > a and "up" in started:
-                        leftover = (p, b)
-                        break
-                    q = min(b, p + step)
-                    here.append((p, run_block(model, sweep, p, q)))
-                    bar.update(q - p)
-            thread.join()
-        if "error" in started:
-            raise EvaluationError(f"could not start {workers} local workers: {started['error']}")
-        ranges, futures = list(started.get("rest", [])), list(started.get("futures", []))
-        if leftover is not None:
-            ranges.append(leftover)
-            futures += _submit(started["client"], model, sweep, [leftover], priority=1)  # next
-        if futures:
-            here += zip((a for a, _ in ranges), _collect(started["client"], futures, ranges, bar))
-        return [part for _, part in sorted(here, key=lambda item: item[0])]
+        with dd.Client(cluster) as client:
+            return _collect(client, _submit(client, model, sweep, ranges), ranges, bar)
     finally:
-        if started.get("client") is not None:
-            started["client"].close()
-        if started.get("cluster") is not None:
-            started["cluster"].close()
+        cluster.close()
 
 
 @contextmanager
@@ -516,9 +481,8 @@ def _on_cluster(client, model, sweep: Sweep, blocks, bar) -> list:
     return _collect(client, _submit(client, model, sweep, blocks), blocks, bar)
 
 
-def _submit(client, model, sweep: Sweep, blocks, priority: int = 0) -> list:
-    return [client.submit(_remote_block, model, sweep, a, b, pure=False, priority=priority)
-            for a, b in blocks]
+def _submit(client, model, sweep: Sweep, blocks) -> list:
+    return [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
 
 
 def _collect(client, futures, blocks, bar) -> list:
