@@ -197,8 +197,8 @@ def section_public(R: Results, goals: list) -> list[str]:
         return []
     lines = ["## What users get: the public call (Q3, Q4, Q6, random 200 and 1,000 states, 100×100 lattice; "
              "rates log-uniform in [1e-3, 1e3])", "",
-             "`m.steady_state(X, out=out)` with everything it does — input checks, rates from the labels, the "
-             "range guard, recompute of flagged rows, the default thread count — per parameter set, beside "
+             "`m.steady_state(X, out=out)` with everything it does — input checks, the rates from the labels "
+             "(looped path), the range guard, recompute of flagged rows, the default thread count — per parameter set, beside "
              "numpy's batched dense solve and the hand-written Numba elimination loop (sets in SIMD lanes) "
              "timed in the same test. *vs raw kernel* is the public call over its own kernel without checks "
              "(the faster of 1 and 2 threads; goal ≤ 1.2× for LLVM on Q3 and Q4, ≤ 1.3× for every back end "
