@@ -425,7 +425,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
     if hit is not None:
         kernel, info, profile = hit
         profile["cache"] = "hit"
-        return _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
+        return _with_recipe(_model(scheme, info, kernel, label_fn, label_kernel, profile), scheme, keywords)
     t0 = time.perf_counter()
     chosen = plan(scheme, method)
     timings["plan"] = time.perf_counter() - t0
@@ -489,7 +489,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
         artifacts.store(key, kernel, info, profile)
-    model = _with_recipe(_model(scheme, info, kernel, label_kernel, profile), scheme, keywords)
+    model = _with_recipe(_model(scheme, info, kernel, label_fn, label_kernel, profile), scheme, keywords)
     if kernel is None and chosen.numeric is not None:
         model.plan = chosen.numeric
     return model
@@ -513,14 +513,26 @@ def _row_checks(scheme: Scheme, groups: dict) -> RowChecks:
                      finite=groups.get("obs", (0, 0)), tol=CompiledModel.ROW_SUM_TOL)
 
 
-def _model(scheme, info: ModelInfo, kernel, label_kernel, profile) -> CompiledModel:
+def _model(scheme, info: ModelInfo, kernel, label_fn: ir.Function, label_kernel, profile) -> CompiledModel:
     method = info.method
     info.label_trees = label_trees(scheme)
     info.observable_terms = observable_trees(scheme)
     return CompiledModel(info, kernel, label_kernel,
                          formula=lambda state, **kw: formula(scheme, state, method=method, **kw),
                          emitter=lambda target, out_dir: emit(scheme, target, out_dir, method=method),
-                         profile=profile)
+                         profile=profile, rate_columns=_rate_columns(label_fn))
+
+
+def _rate_columns(label_fn: ir.Function) -> tuple | None:
+    """The symbol column of each edge's rate when every rate is a bare symbol
+    and every symbol is some edge's rate (the looped path then hands X to its
+    kernel unchanged, see CompiledModel); else None."""
+    g = label_fn.graph
+    nodes = label_fn.group("rates")
+    if any(g.ops[v] != "input" for v in nodes):
+        return None
+    columns = tuple(int(g.data[v]) for v in nodes)
+    return columns if set(columns) == set(range(label_fn.n_inputs)) else None
 
 
 def _derivatives(scheme: Scheme, fn: ir.Function, *, jacobian: bool, along: str | None,

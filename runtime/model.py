@@ -79,10 +79,17 @@ class CompiledModel:
     """
 
     def __init__(self, info: ModelInfo, kernel: Kernel | None, label_kernel: Kernel, *,
-                 formula=None, emitter=None, profile=None):
+                 formula=None, emitter=None, profile=None, rate_columns=None):
         self.info = info
         self.kernel = kernel
         self.label_kernel = label_kernel
+        # The looped path's lean call (kernel None, one terminal component):
+        # when every rate is a bare symbol and every symbol a rate, column e
+        # of the rates is column rate_columns[e] of X (None otherwise).
+        self._rate_columns = (None if rate_columns is None or kernel is not None
+                              or len(info.components) != 1 else np.asarray(rate_columns, dtype=np.intp))
+        self._rates_are_X = (self._rate_columns is not None
+                             and np.array_equal(self._rate_columns, np.arange(len(self._rate_columns))))
         self._formula = formula
         self._emitter = emitter
         self.plan = None  # EliminationPlan of the looped numeric path, built on first use
@@ -356,6 +363,11 @@ class CompiledModel:
                 if bad is not None:
                     out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
             return out
+        if (self._rate_columns is not None and type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2
+                and X.shape[1] == len(self.symbols) and X.flags.c_contiguous and self._use_fused):
+            P = self._looped_lean(X, out, threads)
+            if P is not None:
+                return P
         self._require_single()
         arr = self._input(X)
         shape = (arr.shape[0], len(self.states))
@@ -379,6 +391,32 @@ class CompiledModel:
                 out[...] = P
             return out
         return P if P.flags.c_contiguous else np.ascontiguousarray(P)
+
+    def _looped_lean(self, X: np.ndarray, out, threads):
+        """steady_state of a looped-path model whose rates are bare symbols
+        (:attr:`_rate_columns`): X (or its columns in edge order) goes straight
+        to the plan, whose kernel refuses any rate that is not positive and
+        finite. Every symbol is a rate and no symbol's floor lies above 0
+        (:func:`symbol_floor`), so a set the kernel accepts passes the symbol
+        checks too. Returns None when the kernel refused a set (a zero input,
+        a bad value): the full path then explains it or solves the rows with
+        absent edges, from scratch."""
+        from .numeric import EliminationPlan
+
+        n = X.shape[0]
+        check_threads(threads)
+        if out is None:
+            out = np.empty((n, len(self.states)))
+        else:
+            _check_out(out, (n, len(self.states)), X)
+        if self.plan is None:
+            self.plan = EliminationPlan(len(self.states), self.info.edges)
+        rates = X if self._rates_are_X else np.take(X, self._rate_columns, axis=1)
+        try:
+            self.plan.steady_state(rates, out=out, threads=threads)
+        except EvaluationError:
+            return None
+        return out
 
     def _tree_underflow(self, arr: np.ndarray) -> np.ndarray:
         """Rows where a tree product of labels scaled by their maximum could
