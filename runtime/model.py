@@ -90,6 +90,9 @@ class CompiledModel:
                               or len(info.components) != 1 else np.asarray(rate_columns, dtype=np.intp))
         self._rates_are_X = (self._rate_columns is not None
                              and np.array_equal(self._rate_columns, np.arange(len(self._rate_columns))))
+        # otherwise a label kernel with the fused symbol checks serves the lean call
+        self._rate_kernel = (label_kernel if kernel is None and len(info.components) == 1
+                             and getattr(label_kernel, "checked", None) is not None else None)
         self._formula = formula
         self._emitter = emitter
         self.plan = None  # EliminationPlan of the looped numeric path, built on first use
@@ -363,8 +366,9 @@ class CompiledModel:
                 if bad is not None:
                     out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
             return out
-        if (self._rate_columns is not None and type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2
-                and X.shape[1] == len(self.symbols) and X.flags.c_contiguous and self._use_fused):
+        if ((self._rate_columns is not None or self._rate_kernel is not None) and type(X) is np.ndarray
+                and X.dtype is _F64 and X.ndim == 2 and X.shape[1] == len(self.symbols)
+                and X.flags.c_contiguous and self._use_fused):
             P = self._looped_lean(X, out, threads)
             if P is not None:
                 return P
@@ -393,14 +397,17 @@ class CompiledModel:
         return P if P.flags.c_contiguous else np.ascontiguousarray(P)
 
     def _looped_lean(self, X: np.ndarray, out, threads):
-        """steady_state of a looped-path model whose rates are bare symbols
-        (:attr:`_rate_columns`): X (or its columns in edge order) goes straight
-        to the plan, whose kernel refuses any rate that is not positive and
-        finite. Every symbol is a rate and no symbol's floor lies above 0
-        (:func:`symbol_floor`), so a set the kernel accepts passes the symbol
-        checks too. Returns None when the kernel refused a set (a zero input,
-        a bad value): the full path then explains it or solves the rows with
-        absent edges, from scratch."""
+        """steady_state of a looped-path model in one pass over X and one
+        kernel call. When the rates are bare symbols (:attr:`_rate_columns`),
+        X (or its columns in edge order) goes straight to the plan: every
+        symbol is a rate and no symbol's floor lies above 0
+        (:func:`symbol_floor`), so a set the plan's kernel accepts (rates
+        positive and finite) passes the symbol checks too. Otherwise the label
+        kernel evaluates the rates and checks every symbol against its floor
+        and every rate for finiteness in the same pass (:class:`.kernel.RowChecks`).
+        Returns None when a set was flagged or refused (a zero input, a bad
+        value): the full path then explains it or solves the rows with absent
+        edges, from scratch."""
         from .numeric import EliminationPlan
 
         n = X.shape[0]
@@ -409,9 +416,18 @@ class CompiledModel:
             out = np.empty((n, len(self.states)))
         else:
             _check_out(out, (n, len(self.states)), X)
+        if self._rate_columns is None:
+            k = self._rate_kernel
+            rates = np.empty((n, k.n_outputs))
+            status = np.empty(n, dtype=np.uint8)
+            if k.check(X, rates, status, k.threads_for(n, threads)):
+                return None
+        elif self._rates_are_X:
+            rates = X
+        else:
+            rates = np.take(X, self._rate_columns, axis=1)
         if self.plan is None:
             self.plan = EliminationPlan(len(self.states), self.info.edges)
-        rates = X if self._rates_are_X else np.take(X, self._rate_columns, axis=1)
         try:
             self.plan.steady_state(rates, out=out, threads=threads)
         except EvaluationError:

@@ -123,3 +123,59 @@ def test_zero_input_removes_its_edge():
     np.testing.assert_array_equal(P, checked_path(m, X))
     # with c = 0 nothing leaves A: all probability on A (exact)
     assert P[1, m.states.index("A")] == 1.0 and P[1].sum() == 1.0
+
+
+def mass_action_q4():
+    """Q4 where every third edge's rate is k·c (an input): the rates are not
+    bare symbols, so the label kernel (symbol checks fused) feeds the plan."""
+    n, edges = hypercube(4)
+    s = Scheme(name="q4ma")
+    for e in range(len(edges)):
+        s.add_parameter(f"k{e}")
+    s.add_input("c")
+    for e, (i, j) in enumerate(edges):
+        s.add_edge(f"s{i}", f"s{j}", f"k{e}*c" if e % 3 == 0 else f"k{e}")
+    return s, n, edges
+
+
+@pytest.fixture(scope="module")
+def q4ma():
+    s, n, edges = mass_action_q4()
+    return compile_scheme(s, method="numeric", backend="llvm"), n, edges
+
+
+def test_labelled_rates_same_bits_and_refusals(q4ma):
+    m, n, edges = q4ma
+    assert m._rate_columns is None and m._rate_kernel is not None
+    rng = np.random.default_rng(11)
+    X = 10.0 ** rng.uniform(-5, 5, size=(4_099, len(m.symbols)))
+    lean = m.steady_state(X)
+    np.testing.assert_array_equal(lean, checked_path(m, X))
+    out = np.empty_like(lean)
+    assert m.steady_state(X, out=out) is out
+    np.testing.assert_array_equal(out, lean)
+    c = m.symbols.index("c")
+    for r in (0, 7, 8, 15, 16, 4_098):                  # lanes of a block, the padded tail
+        Y = X.copy()
+        Y[r, c] = np.nan
+        with pytest.raises(EvaluationError) as lean_err:
+            m.steady_state(Y)
+        with pytest.raises(EvaluationError) as checked_err:
+            checked_path(m, Y)
+        assert str(lean_err.value) == str(checked_err.value)
+        assert f"row {r}" in str(lean_err.value) and "'c'" in str(lean_err.value)
+
+
+def test_labelled_rates_zero_input_and_mpmath(q4ma):
+    m, n, edges = q4ma
+    rng = np.random.default_rng(13)
+    X = 10.0 ** rng.uniform(-3, 3, size=(5, len(m.symbols)))
+    X[2, m.symbols.index("c")] = 0.0                     # the k·c edges are absent in row 2
+    P = m.steady_state(X)
+    np.testing.assert_array_equal(P, checked_path(m, X))
+    index = [m.states.index(f"s{i}") for i in range(n)]
+    for r in (0, 1, 3):
+        values = dict(zip(m.symbols, X[r]))
+        rates = [values[f"k{e}"] * (values["c"] if e % 3 == 0 else 1.0) for e in range(len(edges))]
+        ref = mp_steady_state(n, edges, rates)                   # mpmath LU, 50 digits
+        np.testing.assert_allclose(P[r, index], ref, rtol=1e-12)
