@@ -464,6 +464,44 @@ def section_compile(R: Results, goals: list) -> list[str]:
             + table(["route", "seconds", "goal", "", "faster than SymPy"], rows))
 
 
+def section_big_bodies(R: Results) -> list[str]:
+    """Cold builds of the big straight-line bodies per back end (bench_compile.py)."""
+    cases: dict = {}
+    for k, b in R.in_file("bench_compile.py"):
+        e = b["extra_info"]
+        if "case" in e and "backend" in e:
+            cases.setdefault(e["case"], {})[e["backend"]] = e
+    if not cases:
+        return []
+    backends = ("c", "cython", "llvm")
+    rows = []
+    for case, per in cases.items():
+        cells = []
+        for be in backends:
+            e = per.get(be)
+            if e is None:
+                cells.append("—")
+                continue
+            cell = f"{e['seconds']:.2f} s"
+            if "compiler_peak_mb" in e:
+                cell += f" (compiler peak {e['compiler_peak_mb']:.0f} MB)"
+            g = e.get("goal")
+            if isinstance(g, dict):
+                cell += f", goal {g['target']}: {met(g['met'])}"
+            cells.append(cell)
+        rows.append([case, *cells])
+    lines = ["## Compile time of the big bodies (cold, one build each)", "",
+             "Front end, simplification and back end of one `compile_scheme(..., cache=False)`; Q4 with and "
+             "without `jacobian=True`, a 400-state birth-death chain. The compiler's peak memory is measured "
+             "for the chain's C build in a fresh process (its compiler children only).", ""]
+    lines += table(["body", *backends], rows)
+    q7 = R.info("bench_compile.py::test_emit_c_of_128_states")
+    if q7:
+        lines += [f"`treeflux compile --target c` of Q7 (128 states, about 123,000 flops): emit "
+                  f"{q7['emit_seconds']:.1f} s, gcc {q7['gcc_seconds']:.1f} s (goal < 60 s together).", ""]
+    return lines
+
+
 def section_large(R: Results, goals: list) -> list[str]:
     lines = ["## Large graphs", ""]
     e = R.info("bench_large.py::test_q4_compile_time")
@@ -576,7 +614,7 @@ def others_goals(R: Results, goals: list) -> None:
 def write_readme(data: dict, run: dict, mach: dict, path: Path) -> list:
     R = Results(data)
     goals: list = []
-    lead = section_public(R, goals)
+    lead = section_public(R, goals) + section_big_bodies(R)
     body = []
     body += section_backends(R, goals)
     body += section_numeric(R, goals)
