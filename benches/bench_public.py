@@ -41,7 +41,6 @@ import numpy as np
 import pytest
 
 import baselines as B
-import treeflux.runtime.numeric as numeric
 from bench_backends import BACKENDS, BIG, SMALL, bandwidth, data, floors, numba_loops, value_flops  # noqa: F401
 from bench_numeric import VERSUS, interleaved_best, versus_case
 from conftest import RESULTS
@@ -146,13 +145,6 @@ def looped_model(name, n, edges):
     return _LOOPED_MODELS[name]
 
 
-def looped_threads(plan, rows: int) -> int:
-    """Threads the looped kernel uses when the caller leaves the count open
-    (``EliminationPlan._run_c``: all cores, if each gets 10^6 flops and a vector of sets)."""
-    return int(max(1, min(os.cpu_count() or 1, -(-rows // numeric.LANES),
-                          rows * plan.flops // numeric.MIN_WORK_PER_THREAD)))
-
-
 def route_figures(per: dict, prefix: str, flops: int, n_symbols: int, n_states: int, bw: float,
                   numba: dict, dense_ns: float, threads: int) -> dict:
     """Ratios and floors of one route's public call (``per[prefix + "public"]``)
@@ -218,7 +210,7 @@ def test_public_call_looped(benchmark, models, bandwidth, name):
             "goal_public_over_raw": GOAL_LOOPED_KERNEL, "goal_numba_over_public": GOAL_LOOPED_NUMBA,
             "loadavg": os.getloadavg()[0]}
     info.update(route_figures(per, "", plan.flops, n_edges, n, bandwidth, numba, dense_ns,
-                              looped_threads(plan, rows)))
+                              plan.threads_for(rows)))
     if auto is not None:
         np.testing.assert_allclose(auto_out[:, perm], out, rtol=1e-12)   # straight-line vs looped elimination
         info["auto"] = {"route": f"{auto.method} ({auto.backend})", **route_figures(

@@ -439,7 +439,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         if jacobian or input_derivatives:
             raise ModelError(f"{scheme.origin}: derivatives need a straight-line method; this scheme "
                              f"is too large for one (elimination needs {chosen.reasons['elimination_flops']:,} flops)")
-        kernel, groups, kernel_ops = None, {}, 0
+        kernel, groups = None, {}
         comps = _structure().terminal_components(n, edges)
         weights = _constant_weights(scheme)
         label_kernel = _rate_kernel(scheme, label_fn, name)
@@ -468,7 +468,6 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         compact = ir.compact(fn)
         kernel = back.build(compact, name=name, checks=_row_checks(scheme, fn.groups))
         timings["backend"] = time.perf_counter() - t0
-        kernel_ops = sum(op not in ("const", "input") for op in compact.graph.ops)
         groups = dict(fn.groups)
     from .frontend import rates_may_be_negative
 
@@ -485,7 +484,7 @@ def compile_scheme(scheme: Scheme, *, method: str = "auto", backend: str = "pyth
         log_jacobian=log_jacobian,
         tree_edges=max(len(c) - 1 for c in comps) if chosen.method == "trees" else 0,
         origin=str(scheme.origin), guarded=kernel is not None,
-        signed_rates=rates_may_be_negative(scheme), kernel_ops=kernel_ops)
+        signed_rates=rates_may_be_negative(scheme))
     profile = {"plan": chosen.reasons, "method": chosen.method, "passes": report,
                "derivative_passes": deriv_report, "timings": timings}
     if cache and kernel is not None:
@@ -503,9 +502,11 @@ def _rate_kernel(scheme: Scheme, label_fn: ir.Function, name: str):
     looped kernel itself, whatever the model's back end (a cached library:
     LLVM's JIT took 1.3 s for Q6's 384 rates on every compile); on the numpy
     back end when no C compiler works."""
+    from dataclasses import replace
+
     from treeflux.runtime.cache import CompileError
 
-    checks = _row_checks(scheme, {})
+    checks = replace(_row_checks(scheme, {}), finite=(0, len(label_fn.outputs)))
     try:
         return _backend("c").build(label_fn, name=f"{name}_rates", checks=checks)
     except CompileError:
@@ -516,7 +517,8 @@ def _row_checks(scheme: Scheme, groups: dict) -> RowChecks:
     """The checks fused into the runtime kernel: every symbol against its
     floor (:func:`treeflux.runtime.model.symbol_floors`), the row sum of each
     probability block (p, or one block per terminal component of the basis;
-    none for the looped path's rate kernel), the observables finite."""
+    none for the looped path's rate kernel, whose rates are to be finite
+    instead), the observables finite."""
     params = tuple(s.name for s in scheme.parameters)
     names = params + tuple(s.name for s in scheme.inputs)
     bounds = {s.name: (s.min, s.max) for s in scheme.parameters + scheme.inputs}

@@ -37,6 +37,12 @@ from .kernel import BAD_SYMBOL, NOT_FINITE, NOT_PROBABILITY, Kernel, check_threa
 _F64 = np.dtype(np.float64)
 
 
+def _plain(X, width: int) -> bool:
+    """X is what the kernels read as is: a C-contiguous float64 (N, width) ndarray."""
+    return (type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2 and X.shape[1] == width
+            and X.flags.c_contiguous)
+
+
 @dataclass
 class ModelInfo:
     """Metadata a CompiledModel needs; filled in by the compiler."""
@@ -65,7 +71,6 @@ class ModelInfo:
     # Observables as Σ_i p_i·w_ik(θ): [observable index, state index, weight
     # tree] (trees as label_trees); evaluated per row on every path.
     observable_terms: list = field(default_factory=list)
-    kernel_ops: int = 0          # computed rows of the kernel's body per set (picks the thread count)
 
 
 class CompiledModel:
@@ -161,8 +166,7 @@ class CompiledModel:
 
     def _convert(self, X) -> np.ndarray:
         """:meth:`as_array` without the symbol checks."""
-        if (type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2 and X.shape[1] == len(self.info.parameters)
-                + len(self.info.inputs) and X.flags.c_contiguous):
+        if _plain(X, len(self.info.parameters) + len(self.info.inputs)):
             return X
         syms = self.symbols
         if isinstance(X, dict):
@@ -349,8 +353,7 @@ class CompiledModel:
         place (no allocation: reuse it in fitting loops); if the call is
         refused, ``out`` may hold partial results."""
         lean = self._lean
-        if (lean is not None and type(X) is np.ndarray and X.dtype is _F64 and X.ndim == 2
-                and X.shape[1] == lean[1] and X.flags.c_contiguous and self._use_fused):
+        if lean is not None and self._use_fused and _plain(X, lean[1]):
             # the lean path: a float64 array of the right shape, one native call
             kernel, _, n_out = lean
             n = X.shape[0]
@@ -366,9 +369,8 @@ class CompiledModel:
                 if bad is not None:
                     out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
             return out
-        if ((self._rate_columns is not None or self._rate_kernel is not None) and type(X) is np.ndarray
-                and X.dtype is _F64 and X.ndim == 2 and X.shape[1] == len(self.symbols)
-                and X.flags.c_contiguous and self._use_fused):
+        if ((self._rate_columns is not None or self._rate_kernel is not None) and self._use_fused
+                and _plain(X, len(self.symbols))):
             P = self._looped_lean(X, out, threads)
             if P is not None:
                 return P

@@ -598,14 +598,24 @@ class EliminationPlan:
                                   f"finite, got {rates[row, what]!r}")
         raise EvaluationError(f"row {row}: out of memory for the elimination workspace")
 
-    def _run_c(self, rates, out, threads):
-        N = rates.shape[0]
+    def threads_for(self, N: int, threads: int | None = None) -> int:
+        """Threads a call on ``N`` sets runs on (``threads``: an upper bound,
+        default every core): one per core that gets a vector of sets, a block
+        and :data:`MIN_WORK_PER_THREAD` flops."""
+        return self._split(N, threads)[0]
+
+    def _split(self, N: int, threads: int | None) -> tuple[int, int]:
+        """(threads, vectors per block) of a call on ``N`` sets."""
         limit = threads or os.cpu_count() or 1
         count = int(max(1, min(limit, -(-N // LANES), N * self.flops // MIN_WORK_PER_THREAD)))
         groups = self._groups(-(-N // count))
+        return min(count, -(-N // (LANES * groups))), groups
+
+    def _run_c(self, rates, out, threads):
+        N = rates.shape[0]
+        count, groups = self._split(N, threads)
         width = LANES * groups
         blocks = -(-N // width)
-        count = min(count, blocks)
         cuts = [min(N, width * (blocks * c // count)) for c in range(count + 1)]
         tape = ctypes.byref(self._struct)
         rp, op = rates.ctypes.data, out.ctypes.data
@@ -714,7 +724,7 @@ def exact_steady_state(n, edges, rates, order=None) -> np.ndarray:
     range: the path of last resort for sets whose float64 intermediates
     underflow. Each result is correctly rounded from a value with a relative
     error far below 1e-30 (nothing is subtracted)."""
-    from decimal import Context, Decimal
+    from decimal import Context
 
     ctx = Context(prec=40, Emin=-10**9, Emax=10**9)
     n, src, dst = _check_graph(n, edges)

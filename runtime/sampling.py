@@ -414,10 +414,10 @@ def _new_cluster(workers: int):
       two-core machine is CPU the sweep gets (a ≈10 s sweep on two workers
       went from 1.63–1.68× to 1.75–1.83× the one-process time, measured).
     """
+    method = "forkserver" if _start_fork_server() else "spawn"   # first: it imports beside dask's import here
     dd = _distributed()
     import dask.config
 
-    method = "forkserver" if _start_fork_server() else "spawn"
     with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
                           "distributed.worker.multiprocessing-method": method,
                           **QUIET_WORKERS}):
@@ -448,18 +448,17 @@ def _on_new_cluster(workers: int, model, sweep: Sweep, blocks, bar) -> list:
     the fork server's imports) and slowed it more than they gained: 0.65 s to
     the first task against 0.45 s idle, 2.40 s against 2.32 s for a 2 s sweep,
     1.65-1.77x against 1.77-1.81x for a 12 s one (measured here)."""
-    ranges = _balanced(list(blocks), workers)
     with _sigint_ignored():
-        _start_fork_server()
-        dd = _distributed()
         try:
             cluster = _new_cluster(workers)
+        except TreefluxError:
+            raise
         except Exception as exc:  # noqa: BLE001 — any failure to start is one line
             first = (str(exc).splitlines() or [type(exc).__name__])[0]
             raise EvaluationError(f"could not start {workers} local workers: {first}") from None
     try:
-        with dd.Client(cluster) as client:
-            return _collect(client, _submit(client, model, sweep, ranges), ranges, bar)
+        with _distributed().Client(cluster) as client:
+            return _on_cluster(client, model, sweep, _balanced(list(blocks), workers), bar)
     finally:
         cluster.close()
 
@@ -478,16 +477,8 @@ def _connect(address: str):
 
 def _on_cluster(client, model, sweep: Sweep, blocks, bar) -> list:
     """Run the blocks as tasks, collect them in order as they finish."""
-    return _collect(client, _submit(client, model, sweep, blocks), blocks, bar)
-
-
-def _submit(client, model, sweep: Sweep, blocks) -> list:
-    return [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
-
-
-def _collect(client, futures, blocks, bar) -> list:
-    """Results of ``futures`` (one per block) in block order, as they finish."""
     dd = _distributed()
+    futures = [client.submit(_remote_block, model, sweep, a, b, pure=False) for a, b in blocks]
     where = {f.key: i for i, f in enumerate(futures)}
     parts: list = [None] * len(futures)
     try:

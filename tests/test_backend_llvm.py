@@ -127,7 +127,7 @@ def test_steady_state_matches_master_equation(kernels, name):
     assert np.allclose(P.sum(axis=1), 1.0, rtol=0, atol=1e-15)
 
 
-@pytest.mark.parametrize("N", [1, 7, 8, 9, 15, 16, 1000])
+@pytest.mark.parametrize("N", [1, 7, 8, 9, 15, 16, 17, 31, 32, 33, 1000])  # blocks of 16 rows
 def test_tail_sizes(kernels, N):
     fn, kern = kernels["complete4"]
     X = loguniform(np.random.default_rng(N), (N, fn.n_inputs))

@@ -179,3 +179,21 @@ def test_labelled_rates_zero_input_and_mpmath(q4ma):
         rates = [values[f"k{e}"] * (values["c"] if e % 3 == 0 else 1.0) for e in range(len(edges))]
         ref = mp_steady_state(n, edges, rates)                   # mpmath LU, 50 digits
         np.testing.assert_allclose(P[r, index], ref, rtol=1e-12)
+
+
+def test_labelled_rate_that_overflows_is_refused_like_the_checked_path(q4ma):
+    """k·c = 1e200 · 1e200 is inf: the label kernel flags the row (its rates
+    must be finite) and the checked path names the edge."""
+    m, n, edges = q4ma
+    X = np.full((40, len(m.symbols)), 2.0)
+    X[33, m.symbols.index("k0")] = 1e200
+    X[33, m.symbols.index("c")] = 1e200
+    rates = np.empty((40, len(edges)))
+    status = np.empty(40, dtype=np.uint8)
+    assert m._rate_kernel.check(X, rates, status, 1) == 1 and status[33] != 0
+    with pytest.raises(EvaluationError) as lean:
+        m.steady_state(X)
+    with pytest.raises(EvaluationError) as checked:
+        checked_path(m, X)
+    assert str(lean.value) == str(checked.value)
+    assert "row 33" in str(lean.value) and "inf" in str(lean.value)
