@@ -52,7 +52,7 @@ import numpy as np
 from .errors import EvaluationError
 from .graph import terminal_components
 from .cache import NATIVE_FLAGS
-from .kernel import _pool
+from .kernel import run_ranges
 from .progress import progress
 
 LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
@@ -625,10 +625,7 @@ class EliminationPlan:
             status = self._fn(tape, rp, op, a, b, groups, err.ctypes.data)
             return tuple(err) if status else None
 
-        if count == 1:
-            results = [run(0, N)]
-        else:
-            results = list(_pool().map(run, cuts[:-1], cuts[1:]))
+        results = run_ranges(run, cuts)
         bad = [r for r in results if r is not None]
         if bad:
             kind, row, what = min(bad, key=lambda r: r[1])
