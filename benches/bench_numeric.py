@@ -36,6 +36,7 @@ import treeflux.runtime.numeric as numeric
 from treeflux.runtime.numeric import EliminationPlan
 
 import baselines as B  # noqa: E402  (benches/ is on sys.path under pytest's prepend import mode)
+from baselines import quiet_before  # noqa: E402
 
 # ------------------------------------------------------------------ schemes
 
@@ -174,14 +175,16 @@ def test_steady_state_speed(benchmark, name):
           f"peak RSS {info['peak_rss_bytes'] / 2**20:,.0f} MiB, plan {build_s:.2f} s")
 
 
-@pytest.mark.parametrize("rows", [512, 4096, 32768])
+@pytest.mark.parametrize("rows", [32, 64, 128, 512, 4096, 32768])
 @pytest.mark.parametrize("threads", [1, 2])
 def test_thread_split(benchmark, monkeypatch, rows, threads):
-    """Where splitting rows across threads starts to pay (sets MIN_WORK_PER_THREAD)."""
+    """Where splitting rows across threads starts to pay (sets MIN_WORK_PER_THREAD,
+    and MIN_WORK_PER_THREAD_POOLED on the native pool)."""
     n, edges, plan, _ = plan_for("Q4")
     rates = rates_for(len(edges), rows, seed=1)
     out = np.empty((rows, n))
     monkeypatch.setattr(numeric, "MIN_WORK_PER_THREAD", 1)     # split whenever threads > 1
+    monkeypatch.setattr(numeric, "MIN_WORK_PER_THREAD_POOLED", 1)
     benchmark(plan.steady_state, rates, out=out, threads=threads)
     benchmark.extra_info.update(rows=rows, threads=threads, work=rows * plan.flops,
                                 ns_per_set=benchmark.stats.stats.min / rows * 1e9)
@@ -245,6 +248,7 @@ def interleaved_best(fns, rounds):
     best = {k: math.inf for k in fns}
     for _ in range(rounds):
         for k, fn in fns.items():
+            quiet_before(k)
             t0 = time.perf_counter()
             fn()
             best[k] = min(best[k], time.perf_counter() - t0)

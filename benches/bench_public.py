@@ -43,6 +43,7 @@ import pytest
 import baselines as B
 from bench_backends import BACKENDS, BIG, SMALL, bandwidth, data, floors, numba_loops, value_flops  # noqa: F401
 from bench_numeric import VERSUS, interleaved_best, versus_case
+from baselines import quiet_before
 from conftest import RESULTS
 
 GOAL_KERNEL = {"llvm": 1.2}        # public / raw kernel; every other back end: 1.3
@@ -56,6 +57,7 @@ def interleaved(calls: dict, *, rounds: int, inner: int) -> dict:
     samples: dict = {k: [] for k in calls}
     for _ in range(rounds):
         for k, f in calls.items():
+            quiet_before(k)
             t0 = time.perf_counter()
             for _ in range(inner):
                 f()

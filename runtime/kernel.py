@@ -116,6 +116,61 @@ def run_ranges(func, bounds) -> list:
     return [first] + [f.result() for f in futures]
 
 
+# Threads of the native pool (thread_pool.c) spin this long after a call
+# before they sleep: a call that follows within it is joined in about a
+# microsecond instead of the 80-100 us a sleeping thread took to wake here.
+POOL_SPIN_SECONDS = 1e-3
+_NATIVE = None          # tf_pool_run through ctypes, False when it cannot be built
+_NATIVE_LOCK = threading.Lock()
+
+
+def native_pool():
+    """``tf_pool_run`` of the shared native pool, or None where no C compiler works."""
+    global _NATIVE
+    if _NATIVE is None:
+        with _NATIVE_LOCK:
+            if _NATIVE is None:
+                _NATIVE = _load_native_pool() or False
+    return _NATIVE or None
+
+
+def _load_native_pool():
+    from pathlib import Path
+
+    from .cache import CompileError, shared_library
+    try:
+        source = Path(__file__).with_name("thread_pool.c").read_text()
+        lib = ctypes.CDLL(str(shared_library(source, flags=("-O2", "-pthread"), libs=("-lpthread",),
+                                             name="thread_pool")))
+    except (CompileError, OSError):
+        return None
+    lib.tf_pool_set_spin(ctypes.c_int64(int(POOL_SPIN_SECONDS * 1e9)))
+    fn = lib.tf_pool_run
+    fn.restype = ctypes.c_int64
+    fn.argtypes = [ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p]
+    fn.library = lib                     # keeps the library loaded as long as the function
+    return fn
+
+
+#: Kinds of native row-range functions the pool calls (see thread_pool.c).
+NATIVE_ROWS, NATIVE_CHECKED, NATIVE_TAPE = 0, 1, 2
+
+
+def run_native(kind: int, args, bounds) -> list | None:
+    """The ranges of ``bounds`` of one native kernel call on the native pool:
+    each range's status, or None when there is no native pool (then use
+    :func:`run_ranges`). ``args``: the kernel's address, then its pointer
+    arguments (see thread_pool.c). Releases the GIL for the whole call."""
+    fn = _NATIVE if _NATIVE is not None else native_pool()
+    if not fn:
+        return None
+    count = len(bounds) - 1
+    words = (ctypes.c_int64 * (len(args) + 2 * count + 1))(*args, *bounds)
+    at = ctypes.addressof(words)
+    fn(kind, at, at + 8 * len(args), count, at + 8 * (len(args) + count + 1))
+    return words[len(args) + count + 1:]
+
+
 _SCHED_GETCPU = None
 _ALLOWED: set | None = None
 _KEPT_OFF: dict = {}    # native id of each pool thread → the core it is kept off (None: none yet)
@@ -198,6 +253,10 @@ def _away_from(cpu: int, func, a: int, b: int):
 # change the bits (rows are independent).
 MIN_SPLIT_SECONDS = 200e-6
 SPLIT_GAIN = 0.9
+# Kernels on the native pool split far smaller calls: the caller claims any
+# range no awake worker took, so a split costs a few microseconds at most.
+NATIVE_MIN_ROWS_PER_THREAD = 256
+NATIVE_MIN_SPLIT_SECONDS = 10e-6
 _CORES = max(1, os.cpu_count() or 1)
 
 
@@ -234,12 +293,17 @@ class Kernel:
         a picklable ``(callable, args)`` pair.
     keepalive : object, optional
         Anything that must live as long as ``run`` (a JIT engine, a library).
+    native : tuple, optional
+        ``(run_address, checked_address)`` of native row-range functions
+        (checked 0 when absent): calls split over threads then go to the
+        native pool (:func:`run_native`), which makes small splits pay.
     """
 
     def __init__(self, run, n_inputs: int, n_outputs: int, *, backend: str,
-                 recipe=None, keepalive=None, parallel: bool = True, checked=None):
+                 recipe=None, keepalive=None, parallel: bool = True, checked=None, native=None):
         self.run = run
         self.checked = checked
+        self.native = native
         self.n_inputs = n_inputs
         self.n_outputs = n_outputs
         self.backend = backend
@@ -249,16 +313,25 @@ class Kernel:
         self.native_threads = False  # the compiled code runs its own threads (OpenMP)
         self.seconds_per_row: dict = {}  # threads → best time per row seen (the thread rule)
 
+    def _pooled(self) -> bool:
+        """Whether split calls go to the native pool."""
+        return bool(self.native) and native_pool() is not None
+
+    def min_rows(self) -> int:
+        """Rows per thread below which a call is not split."""
+        return NATIVE_MIN_ROWS_PER_THREAD if self._pooled() else MIN_ROWS_PER_THREAD
+
     def threads_for(self, n: int, threads: int | None = None) -> int:
         """Threads a call on ``n`` rows uses: ``threads`` if given (at most
-        one per :data:`MIN_ROWS_PER_THREAD` rows), else the measured rule
-        above."""
-        if n < 2 * MIN_ROWS_PER_THREAD or not (self.parallel or self.native_threads):
+        one per :meth:`min_rows` rows), else the measured rule above."""
+        rows = self.min_rows()
+        if n < 2 * rows or not (self.parallel or self.native_threads):
             return 1
-        most = min(_CORES, n // MIN_ROWS_PER_THREAD)
+        most = min(_CORES, n // rows)
         if threads is None and _DEFAULT_THREADS is None:
             one = self.seconds_per_row.get(1)
-            if one is None or n * one < MIN_SPLIT_SECONDS:
+            least = NATIVE_MIN_SPLIT_SECONDS if self._pooled() else MIN_SPLIT_SECONDS
+            if one is None or n * one < least:
                 return 1
             split = self.seconds_per_row.get(most)
             return most if split is None or split < SPLIT_GAIN * one else 1
@@ -266,7 +339,7 @@ class Kernel:
 
     def _timed(self, func, n: int, threads: int, *args):
         """``self._split(func, ...)``, timed into :attr:`seconds_per_row` for large calls."""
-        if n < 2 * MIN_ROWS_PER_THREAD:
+        if n < 2 * self.min_rows():
             return self._split(func, n, threads, *args)
         t0 = time.perf_counter()
         result = self._split(func, n, threads, *args)
@@ -280,7 +353,13 @@ class Kernel:
         """``func(*args, start, stop)`` over ``threads`` contiguous row ranges."""
         if threads == 1:
             return [func(*args, 0, n)]
-        return run_ranges(lambda a, b: func(*args, a, b), np.linspace(0, n, threads + 1).astype(int))
+        bounds = [n * i // threads for i in range(threads + 1)]
+        if self._pooled() and (func is self.run or func is self.checked):
+            address = self.native[0] if func is self.run else self.native[1]
+            if address:
+                kind = NATIVE_ROWS if func is self.run else NATIVE_CHECKED
+                return run_native(kind, [address, *(a.ctypes.data for a in args)], bounds)
+        return run_ranges(lambda a, b: func(*args, a, b), bounds)
 
     def __call__(self, X: np.ndarray, out: np.ndarray | None = None, *, threads: int | None = None):
         X = np.ascontiguousarray(X, dtype=np.float64)
@@ -306,7 +385,7 @@ class Kernel:
         passes a C-contiguous float64 ``X`` (N, n_inputs), ``out`` (N,
         n_outputs) and uint8 ``status`` (N,), none overlapping."""
         n = X.shape[0]
-        if n < 2 * MIN_ROWS_PER_THREAD:
+        if n < 2 * self.min_rows():
             return self.checked(X, out, status, 0, n) if n else 0
         return sum(self._timed(self.checked, n, threads, X, out, status))
 

@@ -52,7 +52,7 @@ import numpy as np
 from .errors import EvaluationError
 from .graph import terminal_components
 from .cache import NATIVE_FLAGS
-from .kernel import run_ranges
+from .kernel import NATIVE_TAPE, native_pool, run_native, run_ranges
 from .progress import progress
 
 LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
@@ -63,6 +63,11 @@ SCORE_CAP = 1024               # above in-degree × out-degree, the fill score i
 # 512 rows took 57 µs on one thread and 73 µs on two; 4,096 rows 434 µs on one
 # and 321 µs on two — the break-even lies near 10^6 flops per thread.
 MIN_WORK_PER_THREAD = 1_000_000
+# On the native pool (runtime/thread_pool.c: spinning workers, the caller
+# claims what no worker took) the break-even drops to about 20,000 flops per
+# thread (Q4: 64 sets took 18.4 us on one thread and 17.6 us on two; 128 sets
+# 23.8 and 21.1 us; Q6, 16 sets: 31.6 and 24.1 us; measured here).
+MIN_WORK_PER_THREAD_POOLED = 50_000
 GROUP_BYTES = 32 << 10          # slot bytes of a block up to which wider blocks are used
 TINY = 2.0 ** -960             # below this a scaled or censored rate may have lost digits to underflow
 BIG = np.finfo(np.float64).max
@@ -607,7 +612,8 @@ class EliminationPlan:
     def _split(self, N: int, threads: int | None) -> tuple[int, int]:
         """(threads, vectors per block) of a call on ``N`` sets."""
         limit = threads or os.cpu_count() or 1
-        count = int(max(1, min(limit, -(-N // LANES), N * self.flops // MIN_WORK_PER_THREAD)))
+        least = MIN_WORK_PER_THREAD_POOLED if native_pool() is not None else MIN_WORK_PER_THREAD
+        count = int(max(1, min(limit, -(-N // LANES), N * self.flops // least)))
         groups = self._groups(-(-N // count))
         return min(count, -(-N // (LANES * groups))), groups
 
@@ -619,14 +625,17 @@ class EliminationPlan:
         cuts = [min(N, width * (blocks * c // count)) for c in range(count + 1)]
         tape = ctypes.byref(self._struct)
         rp, op = rates.ctypes.data, out.ctypes.data
-
-        def run(a, b):
-            err = np.zeros(3, dtype=np.int64)
-            status = self._fn(tape, rp, op, a, b, groups, err.ctypes.data)
-            return tuple(err) if status else None
-
-        results = run_ranges(run, cuts)
-        bad = [r for r in results if r is not None]
+        errs = np.zeros((count, 3), dtype=np.int64)
+        native = None
+        if count > 1:
+            native = run_native(NATIVE_TAPE, [ctypes.cast(self._fn, ctypes.c_void_p).value,
+                                              ctypes.addressof(self._struct), rp, op, groups,
+                                              errs.ctypes.data], cuts)
+        if native is None:
+            where = {a: i for i, a in enumerate(cuts[:-1])}
+            native = run_ranges(lambda a, b: self._fn(tape, rp, op, a, b, groups,
+                                                      errs[where[a]].ctypes.data), cuts)
+        bad = [tuple(errs[i]) for i, status in enumerate(native) if status]
         if bad:
             kind, row, what = min(bad, key=lambda r: r[1])
             self._raise(int(kind), int(row), int(what), rates)

@@ -34,6 +34,7 @@ def test_same_bits_on_one_and_two_threads_and_every_block_width(monkeypatch):
     rates = log_uniform(np.random.default_rng(1), (203, 600), 1e-3, 1e3)
     plan = EliminationPlan(200, edges)
     monkeypatch.setattr(numeric, "MIN_WORK_PER_THREAD", 1)      # split whatever the size
+    monkeypatch.setattr(numeric, "MIN_WORK_PER_THREAD_POOLED", 1)
     ref = solve(plan, rates, 1, threads=1)
     np.testing.assert_allclose(ref.sum(axis=1), 1.0, rtol=1e-13)
     for groups in (1, 2, 4):

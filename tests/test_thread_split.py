@@ -3,6 +3,7 @@ run once, results in range order, the caller doing the first, pool threads
 kept off the caller's core, and a forked child that starts a fresh pool."""
 
 import os
+import signal
 import threading
 
 import numpy as np
@@ -69,6 +70,7 @@ def test_forked_child_starts_a_fresh_pool():
     r, w = os.pipe()
     pid = os.fork()
     if pid == 0:                                      # child: must not wait on the parent's threads
+        signal.alarm(30)                              # a hang fails the test instead of the run
         try:
             fresh = K._POOL is None and not K._KEPT_OFF
             ok = K.run_ranges(lambda a, b: b - a, [0, 2, 5, 9]) == [2, 3, 4]
@@ -92,3 +94,113 @@ def test_threaded_kernel_call_same_bits_as_one_thread():
     one = m.steady_state(X, threads=1)
     two = m.kernel(X, threads=2)
     assert np.array_equal(one, two)
+
+
+# ------------------------------------------------------------------ the native pool (thread_pool.c)
+
+needs_pool = pytest.mark.skipif(K.native_pool() is None, reason="no working C compiler")
+
+
+def _q3_llvm():
+    from treeflux.compiler import compile_scheme
+
+    from .schemes import hypercube_scheme
+
+    return compile_scheme(hypercube_scheme(3), backend="llvm")
+
+
+@needs_pool
+def test_native_pool_ranges_of_any_shape_same_bits():
+    """Every cut of the rows, empty ranges and 64 ranges included, gives the
+    one-thread bits; status counts come back per range."""
+    m = _q3_llvm()
+    k = m.kernel
+    rng = np.random.default_rng(5)
+    N = 3_001
+    X = np.exp(rng.uniform(-7, 7, (N, k.n_inputs)))
+    X[1_777, 4] = -1.0                                 # one refused row: flagged in its range only
+    ref, ref_status = np.empty((N, k.n_outputs)), np.zeros(N, np.uint8)
+    assert k.checked(X, ref, ref_status, 0, N) == 1
+    for count in (2, 3, 7, 64):
+        for _ in range(5):
+            cuts = np.sort(rng.integers(0, N + 1, count - 1))
+            bounds = [0, *cuts.tolist(), N]
+            out, status = np.full((N, k.n_outputs), np.nan), np.zeros(N, np.uint8)
+            got = K.run_native(K.NATIVE_CHECKED, [k.native[1], X.ctypes.data, out.ctypes.data,
+                                                  status.ctypes.data], bounds)
+            assert np.array_equal(out, ref, equal_nan=True) and np.array_equal(status, ref_status)
+            flagged = [i for i in range(count) if bounds[i] <= 1_777 < bounds[i + 1]]
+            assert got == [1 if i in flagged else 0 for i in range(count)]
+
+
+@needs_pool
+def test_native_pool_back_to_back_and_from_several_threads():
+    """Many calls in a row (workers awake, stale wake-ups of earlier calls)
+    and calls from four Python threads at once (one gets the pool, the others
+    run alone): every result is the one-thread result."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    m = _q3_llvm()
+    rng = np.random.default_rng(6)
+    Xs = [np.exp(rng.uniform(-5, 5, (n, len(m.symbols)))) for n in (600, 1_500, 4_100)]
+    refs = [m.steady_state(X, threads=1) for X in Xs]
+    for i in range(300):
+        j = i % 3
+        assert np.array_equal(m.steady_state(Xs[j], threads=2), refs[j])
+
+    def many(j):
+        return all(np.array_equal(m.steady_state(Xs[j], threads=2), refs[j]) for _ in range(50))
+
+    with ThreadPoolExecutor(4) as ex:
+        assert all(ex.map(many, [0, 1, 2, 0]))
+
+
+@needs_pool
+def test_small_calls_split_on_the_native_pool(monkeypatch):
+    monkeypatch.setattr(K, "_CORES", 2)
+    k = _q3_llvm().kernel
+    assert k.min_rows() == K.NATIVE_MIN_ROWS_PER_THREAD
+    k.seconds_per_row.update({1: 25e-9, 2: 14e-9})
+    assert k.threads_for(1_024) == 2                   # 26 us of work: worth the second core
+    assert k.threads_for(300) == 1                     # too few rows for two threads
+
+
+@needs_pool
+def test_looped_path_bad_row_in_a_workers_range_is_named():
+    """The tape kernel on the native pool: a bad rate in the second range is
+    reported with its own row and edge (each range has its own error slot)."""
+    from treeflux.runtime.numeric import EliminationPlan
+
+    from .test_numeric import log_uniform, random_scheme
+
+    edges = random_scheme(30, 90, 4)
+    plan = EliminationPlan(30, edges)
+    rates = log_uniform(np.random.default_rng(4), (4_000, 90), 1e-3, 1e3)
+    assert plan.threads_for(4_000, 2) == 2
+    ref = plan.steady_state(rates, threads=1)
+    assert np.array_equal(plan.steady_state(rates, threads=2), ref)
+    rates[3_500, 17] = 0.0
+    with pytest.raises(Exception, match=r"row 3500: rate of edge 17"):
+        plan.steady_state(rates, threads=2)
+
+
+@needs_pool
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")
+def test_forked_child_uses_the_native_pool():
+    m = _q3_llvm()
+    X = np.exp(np.random.default_rng(8).uniform(-5, 5, (2_048, len(m.symbols))))
+    ref = m.steady_state(X, threads=1)
+    assert np.array_equal(m.steady_state(X, threads=2), ref)      # the parent's workers exist
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:
+        signal.alarm(30)
+        try:
+            ok = all(np.array_equal(m.steady_state(X, threads=2), ref) for _ in range(20))
+            os.write(w, b"1" if ok else b"0")
+        finally:
+            os._exit(0)
+    os.close(w)
+    got = os.read(r, 1)
+    os.waitpid(pid, 0)
+    assert got == b"1"

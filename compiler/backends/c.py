@@ -804,9 +804,10 @@ def build_from_source(sources: dict[str, str], name: str, n_inputs: int, n_outpu
     def run(X, out, start, stop):  # ctypes releases the GIL during the call
         return func(X.ctypes.data, out.ctypes.data, start, stop)
 
-    checked = None
+    checked, checked_address = None, 0
     if f"{name}_eval_checked(" in sources[f"{name}.c"]:
         cfunc = getattr(lib, f"{name}_eval_checked")
+        checked_address = ctypes.cast(cfunc, ctypes.c_void_p).value
         cfunc.argtypes = [ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_long, ctypes.c_long]
         cfunc.restype = ctypes.c_long
 
@@ -815,7 +816,7 @@ def build_from_source(sources: dict[str, str], name: str, n_inputs: int, n_outpu
 
     recipe = (build_from_source, (dict(sources), name, n_inputs, n_outputs, tuple(flags)))
     kernel = Kernel(run, n_inputs, n_outputs, backend="c", recipe=recipe, keepalive=lib,
-                    checked=checked)
+                    checked=checked, native=(ctypes.cast(func, ctypes.c_void_p).value, checked_address))
     first = ctypes.c_char.in_dll(lib, f"{name}_version")
     kernel.version = ctypes.cast(ctypes.addressof(first), ctypes.c_char_p).value.decode()
     return kernel

@@ -793,7 +793,8 @@ def compile_text(text: str, n_inputs: int, n_outputs: int) -> Kernel:
 
     return Kernel(run, n_inputs, n_outputs, backend="llvm",
                   recipe=(compile_text, (text, n_inputs, n_outputs)),
-                  keepalive=(engine, cfunc, cchecked), checked=checked)
+                  keepalive=(engine, cfunc, cchecked), checked=checked,
+                  native=(address, checked_address))
 
 
 def build(fn: Function, *, name: str = "treeflux_model", check_inputs: bool = False,
