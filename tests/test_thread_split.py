@@ -67,20 +67,25 @@ def test_pool_thread_kept_off_the_callers_core():
 def test_forked_child_starts_a_fresh_pool():
     K.run_ranges(lambda a, b: a, [0, 1, 2])           # the parent has a pool and known threads
     assert K._POOL is not None and K._KEPT_OFF
+    assert in_forked_child(lambda: K._POOL is None and not K._KEPT_OFF
+                           and K.run_ranges(lambda a, b: b - a, [0, 2, 5, 9]) == [2, 3, 4])
+
+
+def in_forked_child(check) -> bool:
+    """``check()`` in a forked child (a hang fails after 30 s instead of hanging the run)."""
     r, w = os.pipe()
     pid = os.fork()
-    if pid == 0:                                      # child: must not wait on the parent's threads
-        signal.alarm(30)                              # a hang fails the test instead of the run
+    if pid == 0:
+        signal.alarm(30)
         try:
-            fresh = K._POOL is None and not K._KEPT_OFF
-            ok = K.run_ranges(lambda a, b: b - a, [0, 2, 5, 9]) == [2, 3, 4]
-            os.write(w, b"1" if fresh and ok else b"0")
+            os.write(w, b"1" if check() else b"0")
         finally:
             os._exit(0)
     os.close(w)
     got = os.read(r, 1)
     os.waitpid(pid, 0)
-    assert got == b"1"
+    os.close(r)
+    return got == b"1"
 
 
 def test_threaded_kernel_call_same_bits_as_one_thread():
@@ -191,16 +196,4 @@ def test_forked_child_uses_the_native_pool():
     X = np.exp(np.random.default_rng(8).uniform(-5, 5, (2_048, len(m.symbols))))
     ref = m.steady_state(X, threads=1)
     assert np.array_equal(m.steady_state(X, threads=2), ref)      # the parent's workers exist
-    r, w = os.pipe()
-    pid = os.fork()
-    if pid == 0:
-        signal.alarm(30)
-        try:
-            ok = all(np.array_equal(m.steady_state(X, threads=2), ref) for _ in range(20))
-            os.write(w, b"1" if ok else b"0")
-        finally:
-            os._exit(0)
-    os.close(w)
-    got = os.read(r, 1)
-    os.waitpid(pid, 0)
-    assert got == b"1"
+    assert in_forked_child(lambda: all(np.array_equal(m.steady_state(X, threads=2), ref) for _ in range(20)))
