@@ -303,7 +303,7 @@ def test_against_numba_loop(benchmark, name):
     fns = {("numba", th): (lambda th=th: loop.steady_state(X, cols, out=theirs, threads=th)) for th in (2, 1)}
     fns.update({("treeflux", th): (lambda th=th: plan.steady_state(X, out=ours[th], threads=th))
                 for th in (1, 2)})
-    rounds = 5 if count * plan.flops < 2e9 else 3
+    rounds = 9 if count * plan.flops < 2e9 else 3      # best of 9: one quiet round is enough
     best = interleaved_best(fns, rounds)
     benchmark.pedantic(plan.steady_state, args=(X,), kwargs={"out": ours[2], "threads": 2},
                        rounds=1, iterations=1)
