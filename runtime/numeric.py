@@ -56,6 +56,14 @@ from .kernel import NATIVE_TAPE, native_pool, run_native, run_ranges
 from .progress import progress
 
 LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
+# Graphs up to this size get RESTARTS more greedy passes, ties broken by
+# seeded shuffles instead of the state index; the fewest flops wins (see
+# elimination_order). By size, not by time, so every machine picks the same
+# order. They cost about 9 passes: random 1,000 states 0.14 -> 1.0 s.
+RESTARTS = 8
+RESTART_STATES = 2_000
+RESTART_EDGES = 20_000
+RESTART_FLOPS = 20_000_000
 SCORE_CAP = 1024               # above in-degree × out-degree, the fill score is that bound (measured:
                                # 100×100 lattice orders in 2 s at 1024 vs 6 s at 4096, 7% more flops)
 # Split rows across threads only when each thread gets at least this much work,
@@ -156,7 +164,16 @@ def elimination_order(n, edges, *, root=None) -> list[int]:
     eliminated state are rescored eagerly (other states can only lose fill),
     and a state whose in-degree × out-degree exceeds ``SCORE_CAP`` is scored
     by that product, an upper bound of its fill — an approximate variant
-    that keeps 10,000-state lattices to seconds. Deterministic.
+    that keeps 10,000-state lattices to seconds. On graphs of at most
+    ``RESTART_STATES`` states and ``RESTART_EDGES`` edges whose first pass
+    costs at most ``RESTART_FLOPS``, ``RESTARTS`` more passes break the ties
+    by seeded shuffles of the states instead of their index, and the pass
+    with the fewest flops wins (the first on ties; a pass stops as soon as it
+    cannot win). Measured here: random 200 states and 600 edges 51,879 →
+    49,697 flops (looped kernel 4.53 → 4.26 µs per set), random 1,000 states
+    5.66 → 5.10 million (553 → 470 µs); hypercubes keep the index order. The
+    rule depends on sizes only, so the order is deterministic: the same on
+    every machine and every run.
 
     Every state must reach the root: the scheme needs exactly one terminal
     strong component, which contains the root; otherwise ``EvaluationError``.
@@ -166,8 +183,7 @@ def elimination_order(n, edges, *, root=None) -> list[int]:
     >>> elimination_order(3, [(0, 1), (1, 0), (1, 2), (2, 1)])
     [0, 1, 2]
     """
-    n, src, dst = _check_graph(n, edges)
-    return _greedy(n, src, dst, root, None).order
+    return elimination_cost(n, edges, root=root).order
 
 
 class EliminationCost:
@@ -217,10 +233,17 @@ def elimination_cost(n, edges, *, root=None, budget=None, terminal=None) -> Elim
     caller has them already (saves recomputing the components).
     """
     n, src, dst = _check_graph(n, edges)
-    return _greedy(n, src, dst, root, budget, terminal)
+    best = _greedy(n, src, dst, root, budget, terminal)
+    if best.complete and n <= RESTART_STATES and len(src) <= RESTART_EDGES and best.flops <= RESTART_FLOPS:
+        for seed in range(1, RESTARTS + 1):
+            tie = np.random.default_rng(seed).permutation(n).tolist()
+            other = _greedy(n, src, dst, root, best.flops - 1, terminal, tie)
+            if other.complete and other.flops < best.flops:
+                best = other
+    return best
 
 
-def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
+def _greedy(n, src, dst, root, budget, terminal=None, tie=None) -> EliminationCost:
     out_adj, in_adj = _adjacency(n, src, dst)
     allowed = set(terminal) if terminal is not None else _terminal_states(n, out_adj)
     if root is not None:
@@ -242,11 +265,12 @@ def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
             f += lo - len(o & out_adj[i]) - (i in o)
         return f
 
+    tie = tie if tie is not None else range(n)
     key = [None] * n
     heap = []
     for v in range(n):
         if v != root:
-            key[v] = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+            key[v] = (score(v), len(out_adj[v]) + len(in_adj[v]), tie[v], v)
             heap.append(key[v])
     heapq.heapify(heap)
     order = []
@@ -259,10 +283,10 @@ def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
     with progress("elimination order", total=n, unit="state") as bar:
         while heap:
             item = heapq.heappop(heap)
-            v = item[2]
+            v = item[3]
             if not alive[v] or item != key[v]:
                 continue
-            fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), v)
+            fresh = (score(v), len(out_adj[v]) + len(in_adj[v]), tie[v], v)
             if fresh != item:
                 key[v] = fresh
                 heapq.heappush(heap, fresh)
@@ -304,7 +328,7 @@ def _greedy(n, src, dst, root, budget, terminal=None) -> EliminationCost:
                 return EliminationCost(None, flops, fill, updates, False, n, len(src))
             for u in touched:
                 if u != kept and alive[u]:
-                    key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), u)
+                    key[u] = (score(u), len(out_adj[u]) + len(in_adj[u]), tie[u], u)
                     heapq.heappush(heap, key[u])
     order.append(kept)
     flops += 2 * n                              # Σ x (n-1 adds), 1 div, n muls
