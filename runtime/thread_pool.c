@@ -156,11 +156,13 @@ static void keep_off(int cpu)
     }
 }
 
-static void forget(void)                 /* in a forked child */
+static void forget(void)                 /* in a forked child: only the forking thread exists */
 {
     n_workers = 0;
     atomic_store(&started, 0);
     atomic_store(&sleepers, 0);
+    atomic_store(&running, 0);           /* the parent's workers may have been inside drain() */
+    atomic_store(&claim, 0);
     pthread_mutex_init(&sleep_lock, NULL);
     pthread_cond_init(&wake, NULL);
     pthread_mutex_init(&call_lock, NULL);

@@ -197,3 +197,30 @@ def test_forked_child_uses_the_native_pool():
     ref = m.steady_state(X, threads=1)
     assert np.array_equal(m.steady_state(X, threads=2), ref)      # the parent's workers exist
     assert in_forked_child(lambda: all(np.array_equal(m.steady_state(X, threads=2), ref) for _ in range(20)))
+
+
+@needs_pool
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")
+def test_fork_while_another_thread_is_splitting_calls():
+    """A child forked while the parent's workers were inside a call must not
+    wait for them (they do not exist in the child): 15 forks during a stream of
+    two-thread calls, each child splitting calls of its own. Found by a stress
+    run: 1 child in 30 hung before the child reset the running count."""
+    m = _q3_llvm()
+    X = np.exp(np.random.default_rng(9).uniform(-5, 5, (5_000, len(m.symbols))))
+    ref = m.steady_state(X, threads=1)
+    stop = threading.Event()
+
+    def hammer():
+        while not stop.is_set():
+            m.steady_state(X, threads=2)
+
+    t = threading.Thread(target=hammer)
+    t.start()
+    try:
+        good = sum(in_forked_child(lambda: all(np.array_equal(m.steady_state(X, threads=2), ref)
+                                               for _ in range(3))) for _ in range(15))
+    finally:
+        stop.set()
+        t.join()
+    assert good == 15
