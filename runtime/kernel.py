@@ -85,7 +85,7 @@ def rebuild(func, args) -> "Kernel":
 def _pool() -> ThreadPoolExecutor:
     global _POOL
     if _POOL is None:
-        _POOL = ThreadPoolExecutor(max_workers=max(1, os.cpu_count() or 1),
+        _POOL = ThreadPoolExecutor(max_workers=usable_cores(),
                                    thread_name_prefix="treeflux", initializer=_register)
     return _POOL
 
@@ -257,7 +257,19 @@ SPLIT_GAIN = 0.9
 # range no awake worker took, so a split costs a few microseconds at most.
 NATIVE_MIN_ROWS_PER_THREAD = 256
 NATIVE_MIN_SPLIT_SECONDS = 10e-6
-_CORES = max(1, os.cpu_count() or 1)
+
+
+def usable_cores() -> int:
+    """Cores this process may run on: its affinity mask where the system
+    has one (a container or ``taskset`` may allow fewer than the machine has),
+    else ``os.cpu_count()``."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+_CORES = usable_cores()
 
 
 def data_address(a: np.ndarray) -> int:

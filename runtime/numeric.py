@@ -52,10 +52,11 @@ import numpy as np
 from .errors import EvaluationError
 from .graph import terminal_components
 from .cache import NATIVE_FLAGS
-from .kernel import NATIVE_TAPE, native_pool, run_native, run_ranges
+from .kernel import NATIVE_TAPE, native_pool, run_native, run_ranges, usable_cores
 from .progress import progress
 
 LANES = 8                      # parameter sets per vector (one AVX-512 register of doubles)
+_CORES = usable_cores()         # threads a call may use by default
 # Graphs up to this size get RESTARTS more greedy passes, ties broken by
 # seeded shuffles instead of the state index; the fewest flops wins (see
 # elimination_order). By size, not by time, so every machine picks the same
@@ -589,7 +590,7 @@ class EliminationPlan:
         out : ndarray, shape (N, n), optional
             C-contiguous float64 buffer to write into (reuse it in loops).
         threads : int, optional
-            Upper bound on threads (default ``os.cpu_count()``); rows are
+            Upper bound on threads (default: the cores this process may use); rows are
             split only when each thread gets enough work.
 
         Returns
@@ -635,7 +636,7 @@ class EliminationPlan:
 
     def _split(self, N: int, threads: int | None) -> tuple[int, int]:
         """(threads, vectors per block) of a call on ``N`` sets."""
-        limit = threads or os.cpu_count() or 1
+        limit = threads or _CORES
         least = MIN_WORK_PER_THREAD_POOLED if native_pool() is not None else MIN_WORK_PER_THREAD
         count = int(max(1, min(limit, -(-N // LANES), N * self.flops // least)))
         groups = self._groups(-(-N // count))

@@ -224,3 +224,19 @@ def test_fork_while_another_thread_is_splitting_calls():
         stop.set()
         t.join()
     assert good == 15
+
+
+@pytest.mark.skipif(CORES < 2 or not hasattr(os, "sched_setaffinity"), reason="needs two cores and affinity")
+def test_cores_follow_the_affinity_mask():
+    """A process allowed one core (``taskset``, a container) splits nothing by
+    default, whatever ``os.cpu_count()`` says."""
+    import subprocess
+    import sys
+
+    code = ("import treeflux.runtime.kernel as K, treeflux.runtime.numeric as N;"
+            "print(K._CORES, N._CORES, K.usable_cores())")
+    one = next(iter(os.sched_getaffinity(0)))
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         preexec_fn=lambda: os.sched_setaffinity(0, {one})).stdout.split()
+    assert out == ["1", "1", "1"]
+    assert K.usable_cores() == CORES
