@@ -146,7 +146,7 @@ def _load_native_pool():
         return None
     lib.tf_pool_set_spin(ctypes.c_int64(int(POOL_SPIN_SECONDS * 1e9)))
     fn = lib.tf_pool_run
-    fn.restype = ctypes.c_int64
+    fn.restype = None
     fn.argtypes = [ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p]
     fn.library = lib                     # keeps the library loaded as long as the function
     return fn
@@ -161,8 +161,8 @@ def run_native(kind: int, args, bounds) -> list | None:
     each range's status, or None when there is no native pool (then use
     :func:`run_ranges`). ``args``: the kernel's address, then its pointer
     arguments (see thread_pool.c). Releases the GIL for the whole call."""
-    fn = _NATIVE if _NATIVE is not None else native_pool()
-    if not fn:
+    fn = native_pool()
+    if fn is None:
         return None
     count = len(bounds) - 1
     words = (ctypes.c_int64 * (len(args) + 2 * count + 1))(*args, *bounds)
@@ -172,7 +172,6 @@ def run_native(kind: int, args, bounds) -> list | None:
 
 
 _SCHED_GETCPU = None
-_ALLOWED: set | None = None
 _KEPT_OFF: dict = {}    # native id of each pool thread → the core it is kept off (None: none yet)
 
 
@@ -193,24 +192,12 @@ def _current_cpu() -> int:
     return _SCHED_GETCPU() if _SCHED_GETCPU else -1
 
 
-def _allowed() -> set:
-    """The cores this process may run on (read once, before any pool thread
-    had its affinity changed)."""
-    global _ALLOWED
-    if _ALLOWED is None:
-        try:
-            _ALLOWED = set(os.sched_getaffinity(0))
-        except AttributeError:
-            _ALLOWED = set()
-    return _ALLOWED
-
-
 def _keep_off(tid: int, cpu: int) -> None:
     """Let pool thread ``tid`` run on every allowed core but ``cpu``."""
     if cpu < 0 or _KEPT_OFF.get(tid) == cpu:
         return
     _KEPT_OFF[tid] = cpu
-    others = _allowed() - {cpu}
+    others = _ALLOWED - {cpu}
     if others:
         try:
             os.sched_setaffinity(tid, others)
@@ -223,7 +210,7 @@ def _forget_pool() -> None:
     submit would wait forever) and their thread ids may name other processes'
     threads; start afresh."""
     global _POOL, _ALLOWED
-    _POOL, _ALLOWED = None, None
+    _POOL, _ALLOWED = None, _affinity()
     _KEPT_OFF.clear()
 
 
@@ -259,17 +246,24 @@ NATIVE_MIN_ROWS_PER_THREAD = 256
 NATIVE_MIN_SPLIT_SECONDS = 10e-6
 
 
-def usable_cores() -> int:
-    """Cores this process may run on: its affinity mask where the system
-    has one (a container or ``taskset`` may allow fewer than the machine has),
-    else ``os.cpu_count()``."""
+def _affinity() -> set:
+    """The cores this process may run on (its affinity mask; empty where the
+    system has none). Read at import, before any pool thread had its own
+    mask narrowed (:func:`_keep_off`)."""
     try:
-        return max(1, len(os.sched_getaffinity(0)))
+        return set(os.sched_getaffinity(0))
     except (AttributeError, OSError):
-        return max(1, os.cpu_count() or 1)
+        return set()
 
 
-_CORES = usable_cores()
+_ALLOWED = _affinity()
+# a container or ``taskset`` may allow fewer cores than the machine has
+_CORES = len(_ALLOWED) or max(1, os.cpu_count() or 1)
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (default thread counts follow it)."""
+    return _CORES
 
 
 def data_address(a: np.ndarray) -> int:

@@ -168,7 +168,7 @@ static void forget(void)                 /* in a forked child: only the forking 
     pthread_mutex_init(&call_lock, NULL);
 }
 
-static int grow(int want)
+static void grow(int want)
 {
     static int registered;
     if (!registered) {
@@ -191,22 +191,19 @@ static int grow(int want)
     }
     while (atomic_load(&started) < n_workers)   /* their thread ids, for keep_off */
         RELAX();
-    return n_workers;
 }
 
 void tf_pool_set_spin(int64_t ns) { spin_ns = ns < 0 ? 0 : ns; }
 
-int64_t tf_pool_workers(void) { return n_workers; }
-
-int64_t tf_pool_run(int64_t kind, const int64_t *args, const int64_t *bounds, int64_t count,
-                    int64_t *results)
+void tf_pool_run(int64_t kind, const int64_t *args, const int64_t *bounds, int64_t count,
+                 int64_t *results)
 {
     if (count <= 0)
-        return 0;
+        return;
     if (count == 1 || count > MAX_RANGES || pthread_mutex_trylock(&call_lock) != 0) {
         for (int64_t i = 0; i < count; i++)
             results[i] = call(kind, args, i, bounds[i], bounds[i + 1]);
-        return 0;
+        return;
     }
     grow((int)count - 1);
     keep_off(sched_getcpu());
@@ -230,5 +227,4 @@ int64_t tf_pool_run(int64_t kind, const int64_t *args, const int64_t *bounds, in
     while (atomic_load(&running) > 0)
         RELAX();
     pthread_mutex_unlock(&call_lock);
-    return 0;
 }

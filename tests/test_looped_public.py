@@ -121,6 +121,10 @@ def test_zero_input_removes_its_edge():
     X = np.vstack([m.as_array({"kb": 1.0, "kc": 2.0, "ka": 3.0, "c": c}) for c in (0.5, 0.0)])
     P = m.steady_state(X)
     np.testing.assert_array_equal(P, checked_path(m, X))
+    # Matrix-Tree theorem, in-trees counted by hand: p_A ∝ ka·(kb + kc),
+    # p_B ∝ c·ka, p_C ∝ c·kc; at c = 0.5: 9, 1.5, 1 over 11.5
+    ref = np.array([9.0, 1.5, 1.0]) / 11.5
+    np.testing.assert_allclose(P[0, [m.states.index(x) for x in "ABC"]], ref, rtol=1e-15)
     # with c = 0 nothing leaves A: all probability on A (exact)
     assert P[1, m.states.index("A")] == 1.0 and P[1].sum() == 1.0
 

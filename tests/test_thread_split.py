@@ -60,7 +60,7 @@ def test_pool_thread_kept_off_the_callers_core():
         if K._current_cpu() == here:                  # the caller did not move meanwhile
             assert here not in allowed
             assert cpu != here
-            assert allowed == K._allowed() - {here}
+            assert allowed == K._ALLOWED - {here}
 
 
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")

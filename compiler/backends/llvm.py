@@ -291,28 +291,39 @@ def _transpose(prefix: str, rows: list[str], out: list[str]) -> list[str]:
     return cur
 
 
-def _gather(n_in: int) -> list[str]:
-    """Row-major block %x (LANES rows × n_in) → column vectors in %xc.
-
-    Each tile of 8 rows × 8 columns is loaded as 8 row vectors, transposed,
-    and its columns stored as the 8-lane part of their column vectors that
-    belongs to those rows."""
-    out: list[str] = []
-    full = n_in - n_in % TILE
+def _tiles(n_cols: int, to_columns: bool, tag: str, out: list[str]) -> int:
+    """The full 8 × 8 tiles between a row-major block (LANES rows × n_cols)
+    and its column vectors, one ``VEC`` per column: each tile is loaded as 8
+    vectors, transposed and stored as 8. ``to_columns``: rows ``%x`` →
+    columns ``%xc`` (the gather), else columns ``%yc`` → rows ``%y`` (the
+    scatter). Returns the number of columns the tiles cover."""
+    rows_ptr, cols_ptr = ("%x", "%xc") if to_columns else ("%y", "%yc")
+    full = n_cols - n_cols % TILE
     for c0 in range(0, full, TILE):
         for h in range(LANES // TILE):
-            rows = []
-            for r in range(TILE):
-                t = f"{c0}.{h}.{r}"
-                out.append(f"  %xr{t}.p = getelementptr inbounds double, ptr %x, i64 {(h * TILE + r) * n_in + c0}")
-                out.append(f"  %xr{t} = load {TVEC}, ptr %xr{t}.p, align 8")
-                rows.append(f"%xr{t}")
-            cols = _transpose(f"xt{c0}.{h}", rows, out)
-            for a in range(TILE):
-                t = f"{c0 + a}.{h}"
-                out.append(f"  %xs{t} = getelementptr inbounds double, ptr %xc, i64 {(c0 + a) * LANES + h * TILE}")
-                out.append(f"  store {TVEC} {cols[a]}, ptr %xs{t}, align 64")
-    for j in range(full, n_in):  # columns beyond the last full tile: lane by lane
+            row_at = [f"ptr {rows_ptr}, i64 {(h * TILE + r) * n_cols + c0}" for r in range(TILE)]
+            col_at = [f"ptr {cols_ptr}, i64 {(c0 + a) * LANES + h * TILE}" for a in range(TILE)]
+            (src, src_align), (dst, dst_align) = (((row_at, 8), (col_at, 64)) if to_columns
+                                                  else ((col_at, 64), (row_at, 8)))
+            loaded = []
+            for k, at in enumerate(src):
+                t = f"%{tag}l{c0}.{h}.{k}"
+                out.append(f"  {t}.p = getelementptr inbounds double, {at}")
+                out.append(f"  {t} = load {TVEC}, ptr {t}.p, align {src_align}")
+                loaded.append(t)
+            moved = _transpose(f"{tag}t{c0}.{h}", loaded, out)
+            for k, at in enumerate(dst):
+                t = f"%{tag}s{c0}.{h}.{k}"
+                out.append(f"  {t} = getelementptr inbounds double, {at}")
+                out.append(f"  store {TVEC} {moved[k]}, ptr {t}, align {dst_align}")
+    return full
+
+
+def _gather(n_in: int) -> list[str]:
+    """Row-major block %x (LANES rows × n_in) → column vectors in %xc: full
+    tiles by :func:`_tiles`, columns beyond the last full tile lane by lane."""
+    out: list[str] = []
+    for j in range(_tiles(n_in, True, "x", out), n_in):
         prev = "poison"
         for k in range(LANES):
             out.append(f"  %xp{j}.{k} = getelementptr inbounds double, ptr %x, i64 {k * n_in + j}")
@@ -325,23 +336,10 @@ def _gather(n_in: int) -> list[str]:
 
 
 def _scatter(n_out: int) -> list[str]:
-    """Column vectors in %yc → row-major block %y (LANES rows × n_out), tile by tile."""
+    """Column vectors in %yc → row-major block %y (LANES rows × n_out): full
+    tiles by :func:`_tiles`, columns beyond the last full tile lane by lane."""
     out: list[str] = []
-    full = n_out - n_out % TILE
-    for c0 in range(0, full, TILE):
-        for h in range(LANES // TILE):
-            cols = []
-            for a in range(TILE):
-                t = f"{c0 + a}.{h}"
-                out.append(f"  %yl{t}.p = getelementptr inbounds double, ptr %yc, i64 {(c0 + a) * LANES + h * TILE}")
-                out.append(f"  %yl{t} = load {TVEC}, ptr %yl{t}.p, align 64")
-                cols.append(f"%yl{t}")
-            rows = _transpose(f"yt{c0}.{h}", cols, out)
-            for r in range(TILE):
-                t = f"{c0}.{h}.{r}"
-                out.append(f"  %yr{t} = getelementptr inbounds double, ptr %y, i64 {(h * TILE + r) * n_out + c0}")
-                out.append(f"  store {TVEC} {rows[r]}, ptr %yr{t}, align 8")
-    for j in range(full, n_out):
+    for j in range(_tiles(n_out, False, "y", out), n_out):
         out.append(f"  %yl{j}.p = getelementptr inbounds {VEC}, ptr %yc, i64 {j}")
         out.append(f"  %yl{j} = load {VEC}, ptr %yl{j}.p, align 64")
         for k in range(LANES):
