@@ -71,7 +71,9 @@ FORMAT = 2
 # built for the runtime carry the checked entry (fused row checks, status bytes).
 # 3: LLVM kernels evaluate blocks of 16 rows (entries keep working, but a
 # cached 8-row kernel would hide the faster code from every later compile).
-KERNEL_ABI = 3
+# 4: LLVM kernels fold ``max`` as one vmaxpd per operand plus a NaN test per
+# pair (was llvm.maximum, about seven instructions per operand).
+KERNEL_ABI = 4
 MAX_PINS = 256
 # The Cache Directory Tagging Specification's signature (an open standard:
 # backup tools skip folders holding this file), then treeflux's own lines.

@@ -149,26 +149,59 @@ def _load_native_pool():
     fn.restype = None
     fn.argtypes = [ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p]
     fn.library = lib                     # keeps the library loaded as long as the function
+    fn.call = _load_native_call(ctypes.cast(fn, ctypes.c_void_p).value)
     return fn
+
+
+def _load_native_call(pool_address: int):
+    """``call`` of the extension module built from native_call.c (one native
+    kernel call without ctypes: 0.2 instead of 2 us), or None where it cannot
+    be built (no Python headers): then calls go through ctypes."""
+    import importlib.machinery
+    import importlib.util
+    import sysconfig
+    from pathlib import Path
+
+    from .cache import CompileError, shared_library
+    name = "_treeflux_native_call"
+    try:
+        source = Path(__file__).with_name("native_call.c").read_text()
+        include = sysconfig.get_paths()["include"]
+        path = shared_library(source, flags=("-O2", f"-I{include}"), libs=(), name=name)
+        loader = importlib.machinery.ExtensionFileLoader(name, str(path))
+        module = importlib.util.module_from_spec(importlib.util.spec_from_file_location(name, path, loader=loader))
+        loader.exec_module(module)
+    except (CompileError, ImportError, OSError, KeyError):
+        return None
+    module.set_pool(pool_address)
+    return module.call
 
 
 #: Kinds of native row-range functions the pool calls (see thread_pool.c).
 NATIVE_ROWS, NATIVE_CHECKED, NATIVE_TAPE = 0, 1, 2
 
 
-def run_native(kind: int, args, bounds) -> list | None:
-    """The ranges of ``bounds`` of one native kernel call on the native pool:
-    each range's status, or None when there is no native pool (then use
-    :func:`run_ranges`). ``args``: the kernel's address, then its pointer
-    arguments (see thread_pool.c). Releases the GIL for the whole call."""
+def run_native(kind: int, args, bounds) -> tuple | None:
+    """The ranges of one native kernel call on the native pool: each range's
+    status, or None when there is no native pool (then use :func:`run_ranges`).
+    ``args``: the kernel's address, then its arguments (see thread_pool.c),
+    each an int or a C-contiguous array (passed by its data address).
+    ``bounds``: the row bounds of the ranges, or ``(n, ranges)`` for rows
+    0..n cut into that many near-equal ranges. Releases the GIL for the call."""
     fn = native_pool()
     if fn is None:
         return None
+    if fn.call is not None:
+        return fn.call(kind, *bounds, *args) if type(bounds) is tuple else fn.call(kind, bounds[-1], tuple(bounds), *args)
+    if type(bounds) is tuple:
+        n, count = bounds
+        bounds = [n * i // count for i in range(count + 1)]
+    args = [a if isinstance(a, int) else data_address(a) for a in args]
     count = len(bounds) - 1
     words = (ctypes.c_int64 * (len(args) + 2 * count + 1))(*args, *bounds)
     at = ctypes.addressof(words)
     fn(kind, at, at + 8 * len(args), count, at + 8 * (len(args) + count + 1))
-    return words[len(args) + count + 1:]
+    return tuple(words[len(args) + count + 1:])
 
 
 _SCHED_GETCPU = None
@@ -318,10 +351,14 @@ class Kernel:
         self._keepalive = keepalive
         self.native_threads = False  # the compiled code runs its own threads (OpenMP)
         self.seconds_per_row: dict = {}  # threads → best time per row seen (the thread rule)
+        self._pool_call = None  # native_call's call, True (pool through ctypes), False (no pool): _pooled
 
     def _pooled(self) -> bool:
-        """Whether split calls go to the native pool."""
-        return bool(self.native) and native_pool() is not None
+        """Whether calls go to the native pool (decided once per kernel)."""
+        if self._pool_call is None:
+            pool = native_pool() if self.native else None
+            self._pool_call = False if pool is None else (pool.call or True)
+        return self._pool_call is not False
 
     def min_rows(self) -> int:
         """Rows per thread below which a call is not split."""
@@ -355,17 +392,22 @@ class Kernel:
             self.seconds_per_row[threads] = per_row
         return result
 
-    def _split(self, func, n: int, threads: int, *args) -> list:
-        """``func(*args, start, stop)`` over ``threads`` contiguous row ranges."""
-        if threads == 1:
-            return [func(*args, 0, n)]
-        bounds = [n * i // threads for i in range(threads + 1)]
+    def _split(self, func, n: int, threads: int, *args):
+        """``func(*args, start, stop)`` over ``threads`` contiguous row ranges:
+        each range's status. A native kernel goes to the native pool, through
+        native_call.c when it was built (also for one range: it costs less
+        than ctypes), through ctypes when it splits."""
         if self._pooled() and (func is self.run or func is self.checked):
             address = self.native[0] if func is self.run else self.native[1]
-            if address:
-                kind = NATIVE_ROWS if func is self.run else NATIVE_CHECKED
-                return run_native(kind, [address, *(a.ctypes.data for a in args)], bounds)
-        return run_ranges(lambda a, b: func(*args, a, b), bounds)
+            kind = NATIVE_ROWS if func is self.run else NATIVE_CHECKED
+            call = self._pool_call
+            if address and call is not True:
+                return call(kind, n, threads, address, *args)
+            if address and threads > 1:
+                return run_native(kind, (address, *args), (n, threads))
+        if threads == 1:
+            return [func(*args, 0, n)]
+        return run_ranges(lambda a, b: func(*args, a, b), [n * i // threads for i in range(threads + 1)])
 
     def __call__(self, X: np.ndarray, out: np.ndarray | None = None, *, threads: int | None = None):
         X = np.ascontiguousarray(X, dtype=np.float64)
@@ -390,10 +432,7 @@ class Kernel:
         returns the number of flagged rows. No argument checks: the caller
         passes a C-contiguous float64 ``X`` (N, n_inputs), ``out`` (N,
         n_outputs) and uint8 ``status`` (N,), none overlapping."""
-        n = X.shape[0]
-        if n < 2 * self.min_rows():
-            return self.checked(X, out, status, 0, n) if n else 0
-        return sum(self._timed(self.checked, n, threads, X, out, status))
+        return sum(self._timed(self.checked, X.shape[0], threads, X, out, status))
 
     def __reduce__(self):
         """Pickle as the recipe (data), rebuilt once per process by :func:`rebuild`."""

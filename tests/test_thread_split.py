@@ -135,7 +135,7 @@ def test_native_pool_ranges_of_any_shape_same_bits():
                                                   status.ctypes.data], bounds)
             assert np.array_equal(out, ref, equal_nan=True) and np.array_equal(status, ref_status)
             flagged = [i for i in range(count) if bounds[i] <= 1_777 < bounds[i + 1]]
-            assert got == [1 if i in flagged else 0 for i in range(count)]
+            assert list(got) == [1 if i in flagged else 0 for i in range(count)]
 
 
 @needs_pool
