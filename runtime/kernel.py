@@ -149,14 +149,16 @@ def _load_native_pool():
     fn.restype = None
     fn.argtypes = [ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p]
     fn.library = lib                     # keeps the library loaded as long as the function
-    fn.call = _load_native_call(ctypes.cast(fn, ctypes.c_void_p).value)
+    module = _load_native_call(ctypes.cast(fn, ctypes.c_void_p).value)
+    fn.call = module.call if module else None            # see native_call.c
+    fn.checked = module.checked if module else None
     return fn
 
 
 def _load_native_call(pool_address: int):
-    """``call`` of the extension module built from native_call.c (one native
-    kernel call without ctypes: 0.2 instead of 2 us), or None where it cannot
-    be built (no Python headers): then calls go through ctypes."""
+    """The extension module built from native_call.c (one native kernel call
+    without ctypes: 0.2 instead of 2 us), or None where it cannot be built
+    (no Python headers): then calls go through ctypes."""
     import importlib.machinery
     import importlib.util
     import sysconfig
@@ -173,8 +175,8 @@ def _load_native_call(pool_address: int):
         loader.exec_module(module)
     except (CompileError, ImportError, OSError, KeyError):
         return None
-    module.set_pool(pool_address)
-    return module.call
+    module.set_pool(pool_address, np.ndarray)
+    return module
 
 
 #: Kinds of native row-range functions the pool calls (see thread_pool.c).
@@ -268,11 +270,15 @@ def _away_from(cpu: int, func, a: int, b: int):
 # calls of at least 2 × MIN_ROWS_PER_THREAD rows are timed, the first runs on
 # one thread, the next one large enough (≥ MIN_SPLIT_SECONDS on one thread)
 # on every core it may use, and from then on the split is used only if its
-# best time per row beat one thread's best by SPLIT_GAIN. So at most one call
-# is slower than one thread would have been, and none after it. Threads never
-# change the bits (rows are independent).
+# best time per row beat one thread's best by SPLIT_GAIN. A split that lost is
+# tried again every RETRY_SPLIT-th call: its first try also pays for starting
+# the pool's threads (Q3, 1,024 rows: 1.6 ms instead of 7 us), or finds them
+# asleep, and a model that never retried stayed on one thread for good (15.5
+# instead of 9.6 ns per set). So at most one call in RETRY_SPLIT is slower than
+# the better choice. Threads never change the bits (rows are independent).
 MIN_SPLIT_SECONDS = 200e-6
 SPLIT_GAIN = 0.9
+RETRY_SPLIT = 32
 # Kernels on the native pool split far smaller calls: the caller claims any
 # range no awake worker took, so a split costs a few microseconds at most.
 NATIVE_MIN_ROWS_PER_THREAD = 256
@@ -352,17 +358,24 @@ class Kernel:
         self.native_threads = False  # the compiled code runs its own threads (OpenMP)
         self.seconds_per_row: dict = {}  # threads → best time per row seen (the thread rule)
         self._pool_call = None  # native_call's call, True (pool through ctypes), False (no pool): _pooled
+        self._min_rows = MIN_ROWS_PER_THREAD
+        self._lost_splits = 0   # calls the thread rule kept on one thread (see RETRY_SPLIT)
+        self._pool_checked = None  # native_call's checked for the checked entry: plain_check
 
     def _pooled(self) -> bool:
         """Whether calls go to the native pool (decided once per kernel)."""
         if self._pool_call is None:
             pool = native_pool() if self.native else None
             self._pool_call = False if pool is None else (pool.call or True)
+            self._pool_checked = pool.checked if pool is not None and self.native[1] else None
+            self._min_rows = NATIVE_MIN_ROWS_PER_THREAD if pool is not None else MIN_ROWS_PER_THREAD
         return self._pool_call is not False
 
     def min_rows(self) -> int:
         """Rows per thread below which a call is not split."""
-        return NATIVE_MIN_ROWS_PER_THREAD if self._pooled() else MIN_ROWS_PER_THREAD
+        if self._pool_call is None:
+            self._pooled()
+        return self._min_rows
 
     def threads_for(self, n: int, threads: int | None = None) -> int:
         """Threads a call on ``n`` rows uses: ``threads`` if given (at most
@@ -377,15 +390,40 @@ class Kernel:
             if one is None or n * one < least:
                 return 1
             split = self.seconds_per_row.get(most)
-            return most if split is None or split < SPLIT_GAIN * one else 1
+            if split is None or split < SPLIT_GAIN * one:
+                return most
+            self._lost_splits += 1
+            return most if self._lost_splits % RETRY_SPLIT == 0 else 1
         return max(1, min(threads or _DEFAULT_THREADS, most))
 
-    def _timed(self, func, n: int, threads: int, *args):
-        """``self._split(func, ...)``, timed into :attr:`seconds_per_row` for large calls."""
+    def plain_check(self, X, out, threads=None):
+        """:meth:`check` over every row of ``X`` in one native call whose
+        argument checks are made in C (native_call.c ``checked``): 0 when no
+        row was flagged, else the status bytes of every row (a read-only uint8
+        array); None when this kernel has no such call or when ``X`` is not a
+        C-contiguous float64 ndarray (N, n_inputs) and ``out`` a writable one
+        (N, n_outputs) apart from it: the caller then takes its validating
+        path, which names what is wrong. ``threads`` as in :meth:`threads_for`."""
+        if self._pool_call is None:
+            self._pooled()
+        checked = self._pool_checked
+        if checked is None or type(X) is not np.ndarray or X.ndim != 2:
+            return None
+        n = X.shape[0]
+        threads = self.threads_for(n, threads)
+        status = self._timed(checked, n, threads, self.native[1], threads, self.n_inputs,
+                             self.n_outputs, X, out, split=False)
+        return status if status is None or status == 0 else np.frombuffer(status, dtype=np.uint8)
+
+    def _timed(self, func, n: int, threads: int, *args, split: bool = True):
+        """``self._split(func, n, threads, *args)`` (``func(*args)`` when not
+        ``split``), timed into :attr:`seconds_per_row` for large calls."""
         if n < 2 * self.min_rows():
-            return self._split(func, n, threads, *args)
+            return self._split(func, n, threads, *args) if split else func(*args)
         t0 = time.perf_counter()
-        result = self._split(func, n, threads, *args)
+        result = self._split(func, n, threads, *args) if split else func(*args)
+        if result is None:                 # a call that declined its arguments (plain_check)
+            return None
         per_row = (time.perf_counter() - t0) / n
         best = self.seconds_per_row.get(threads)
         if best is None or per_row < best:
@@ -397,10 +435,11 @@ class Kernel:
         each range's status. A native kernel goes to the native pool, through
         native_call.c when it was built (also for one range: it costs less
         than ctypes), through ctypes when it splits."""
-        if self._pooled() and (func is self.run or func is self.checked):
-            address = self.native[0] if func is self.run else self.native[1]
-            kind = NATIVE_ROWS if func is self.run else NATIVE_CHECKED
-            call = self._pool_call
+        if self._pool_call is None:
+            self._pooled()
+        call = self._pool_call
+        if call is not False and (func is self.run or func is self.checked):
+            address, kind = (self.native[0], NATIVE_ROWS) if func is self.run else (self.native[1], NATIVE_CHECKED)
             if address and call is not True:
                 return call(kind, n, threads, address, *args)
             if address and threads > 1:

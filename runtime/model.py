@@ -353,6 +353,22 @@ class CompiledModel:
         place (no allocation: reuse it in fitting loops); if the call is
         refused, ``out`` may hold partial results."""
         lean = self._lean
+        if lean is not None and self._use_fused and type(X) is np.ndarray:
+            # the leanest path: one native call that checks its own arguments
+            if threads is not None:
+                check_threads(threads)
+            fresh = out is None and X.ndim == 2
+            if fresh:
+                out = np.empty((X.shape[0], lean[2]))
+            status = lean[0].plain_check(X, out, threads)
+            if status is not None:
+                if not isinstance(status, int):
+                    bad = self._flagged(X, status, NOT_PROBABILITY)
+                    if bad is not None:
+                        out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
+                return out
+            if fresh:
+                out = None
         if lean is not None and self._use_fused and _plain(X, lean[1]):
             # the lean path: a float64 array of the right shape, one native call
             kernel, _, n_out = lean

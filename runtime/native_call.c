@@ -27,14 +27,100 @@
 typedef void (*pool_fn)(int64_t, const int64_t *, const int64_t *, int64_t, int64_t *);
 
 static pool_fn pool_run = NULL;
+static PyObject *ndarray = NULL;        /* numpy.ndarray: checked() takes exactly it */
 
-static PyObject *set_pool(PyObject *self, PyObject *address)
+static PyObject *set_pool(PyObject *self, PyObject *args)
 {
+    PyObject *address, *type;
+    if (!PyArg_ParseTuple(args, "OO", &address, &type))
+        return NULL;
     void *p = PyLong_AsVoidPtr(address);
     if (p == NULL && PyErr_Occurred())
         return NULL;
     pool_run = (pool_fn)p;
+    Py_XSETREF(ndarray, Py_NewRef(type));
     Py_RETURN_NONE;
+}
+
+/* view of a C-contiguous 2-d float64 ndarray with `cols` columns (and `rows`
+ * rows unless rows < 0): 1, or 0 with no error set when `a` is anything else */
+static int matrix(PyObject *a, Py_buffer *v, int flags, Py_ssize_t rows, Py_ssize_t cols)
+{
+    if (Py_TYPE(a) != (PyTypeObject *)ndarray)
+        return 0;
+    if (PyObject_GetBuffer(a, v, flags | PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) != 0) {
+        PyErr_Clear();
+        return 0;
+    }
+    if (v->ndim == 2 && v->itemsize == 8 && v->format != NULL && v->format[0] == 'd' && v->format[1] == 0
+        && v->shape[1] == cols && (rows < 0 || v->shape[0] == rows))
+        return 1;
+    PyBuffer_Release(v);
+    return 0;
+}
+
+/* checked(fn, ranges, n_in, n_out, X, out) -> None, 0 or bytes
+ *
+ * The checked entry `fn` (kind 1) over every row of X into out, the rows cut
+ * into `ranges` ranges, when X is a C-contiguous float64 ndarray (N, n_in)
+ * and out a writable one (N, n_out) that does not overlap it; else None, and
+ * the caller takes its validating path, which names what is wrong. Returns 0
+ * when no row was flagged, else the status bytes of every row. The status
+ * buffer is this call's own. */
+static PyObject *checked(PyObject *self, PyObject *const *argv, Py_ssize_t argc)
+{
+    if (argc != 6) {
+        PyErr_SetString(PyExc_TypeError, "checked(fn, ranges, n_in, n_out, X, out): wrong number of arguments");
+        return NULL;
+    }
+    if (pool_run == NULL || ndarray == NULL) {
+        PyErr_SetString(PyExc_RuntimeError, "checked: no native pool set");
+        return NULL;
+    }
+    int64_t fn = PyLong_AsLongLong(argv[0]);
+    int64_t ranges = PyLong_AsLongLong(argv[1]);
+    Py_ssize_t n_in = PyLong_AsSsize_t(argv[2]), n_out = PyLong_AsSsize_t(argv[3]);
+    if (PyErr_Occurred())
+        return NULL;
+    if (ranges < 1 || ranges > MAX_RANGES) {
+        PyErr_SetString(PyExc_ValueError, "checked: 1 to 64 ranges");
+        return NULL;
+    }
+    Py_buffer vx, vo;
+    if (!matrix(argv[4], &vx, PyBUF_SIMPLE, -1, n_in))
+        Py_RETURN_NONE;
+    int64_t n = vx.shape[0];
+    if (!matrix(argv[5], &vo, PyBUF_WRITABLE, n, n_out)) {
+        PyBuffer_Release(&vx);
+        Py_RETURN_NONE;
+    }
+    char *x0 = vx.buf, *o0 = vo.buf;
+    if (vx.len > 0 && vo.len > 0 && x0 < o0 + vo.len && o0 < x0 + vx.len) {
+        PyBuffer_Release(&vx);
+        PyBuffer_Release(&vo);
+        Py_RETURN_NONE;
+    }
+    PyObject *result = NULL;
+    char *status = PyMem_Malloc(n > 0 ? (size_t)n : 1);
+    if (status == NULL) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    int64_t args[4] = {fn, (int64_t)(intptr_t)vx.buf, (int64_t)(intptr_t)vo.buf, (int64_t)(intptr_t)status};
+    int64_t bounds[MAX_RANGES + 1], results[MAX_RANGES], flagged = 0;
+    for (int64_t i = 0; i <= ranges; i++)
+        bounds[i] = n * i / ranges;
+    Py_BEGIN_ALLOW_THREADS
+    pool_run(1, args, bounds, ranges, results);
+    Py_END_ALLOW_THREADS
+    for (int64_t i = 0; i < ranges; i++)
+        flagged += results[i];
+    result = flagged ? PyBytes_FromStringAndSize(status, (Py_ssize_t)n) : PyLong_FromLong(0);
+    PyMem_Free(status);
+done:
+    PyBuffer_Release(&vx);
+    PyBuffer_Release(&vo);
+    return result;
 }
 
 static PyObject *call(PyObject *self, PyObject *const *argv, Py_ssize_t argc)
@@ -105,7 +191,8 @@ done:
 
 static PyMethodDef methods[] = {
     {"call", (PyCFunction)(void (*)(void))call, METH_FASTCALL, "one native kernel call (see the source)"},
-    {"set_pool", set_pool, METH_O, "the address of tf_pool_run"},
+    {"checked", (PyCFunction)(void (*)(void))checked, METH_FASTCALL, "a checked call with its argument checks"},
+    {"set_pool", set_pool, METH_VARARGS, "the address of tf_pool_run and numpy.ndarray"},
     {NULL, NULL, 0, NULL},
 };
 

@@ -381,6 +381,55 @@ def test_bad_api_inputs_are_one_line_evaluation_errors(model, case):
     assert "\n" not in msg and "np.float64" not in msg and fragment in msg, msg
 
 
+@pytest.fixture(scope="module", params=["llvm", "c"])
+def native_model(request):
+    s = Scheme()
+    s.add_edge("A", "B", "k1*L")
+    s.add_edge("B", "A", "k2")
+    s.add_edge("B", "C", "k3")
+    s.add_edge("C", "A", "k4")
+    return compile_scheme(s, backend=request.param)
+
+
+@pytest.mark.parametrize("case", list(BAD_CALLS))
+def test_bad_api_inputs_refused_alike_on_native_back_ends(native_model, case):
+    """The native back ends' public call checks its arguments in C
+    (native_call.c ``checked``) and declines what it cannot take: the
+    validating path then gives the same one-line errors."""
+    test_bad_api_inputs_are_one_line_evaluation_errors(native_model, case)
+
+
+def test_native_public_call_takes_plain_arrays_in_one_call(native_model):
+    m = native_model
+    k = m._lean[0]
+    if k._pooled() and k._pool_checked is None:
+        pytest.skip("the native_call extension could not be built")
+    want = m.steady_state(X.astype(np.float32))        # the validating path (converts)
+    out = np.empty((3, 3))
+    assert k.plain_check(X, out) == 0 and np.array_equal(out, want)
+    assert m.steady_state(X, out=out) is out and np.array_equal(out, want)
+    # what the C checks decline: not an ndarray, wrong dtype, shape, layout, read-only, overlap
+    assert k.plain_check(X.tolist(), out) is None
+    assert k.plain_check(X.astype(np.float32), out) is None
+    assert k.plain_check(X[:, :4].copy(), out) is None
+    assert k.plain_check(np.asfortranarray(X), out) is None
+    assert k.plain_check(X, np.empty((3, 4))) is None
+    assert k.plain_check(X, _readonly()) is None
+    assert k.plain_check(X, np.empty((3, 6))[:, ::2]) is None
+    buf = np.ones(3 * 5 + 3 * 3)
+    assert k.plain_check(buf[:15].reshape(3, 5), buf[6:15].reshape(3, 3)) is None
+    sub = np.zeros((3, 3)).view(type("Sub", (np.ndarray,), {}))
+    assert k.plain_check(X, sub) is None                # a subclass: the validating path takes it
+    assert m.steady_state(X, out=sub) is sub and np.array_equal(sub, want)
+    # a flagged row comes back with its status; the public call refuses it by name
+    bad = X.copy()
+    bad[1, 2] = -1.0
+    status = k.plain_check(bad, np.empty((3, 3)))
+    assert status.dtype == np.uint8 and status.tolist()[0] == 0 and status[1] != 0
+    with pytest.raises(EvaluationError, match="row 1"):
+        m.steady_state(bad)
+
+
 def test_out_sharing_memory_with_inputs_is_refused(model):
     buf = np.ones(3 * 5 + 3 * 3)
     x, out = buf[:15].reshape(3, 5), buf[6:15].reshape(3, 3)  # both C-contiguous, overlapping

@@ -138,6 +138,57 @@ def test_native_pool_ranges_of_any_shape_same_bits():
             assert list(got) == [1 if i in flagged else 0 for i in range(count)]
 
 
+needs_call = pytest.mark.skipif(K.native_pool() is None or K.native_pool().call is None,
+                                reason="the native_call extension could not be built")
+
+
+@needs_call
+def test_native_call_matches_the_ctypes_route(monkeypatch):
+    """Kernel calls through the extension (native_call.c) and through ctypes
+    (its fallback, where no Python headers are found) give the same bits and
+    statuses, on one thread and split, for the plain and the checked entry."""
+    m = _q3_llvm()
+    k = m.kernel
+    X = np.exp(np.random.default_rng(9).uniform(-7, 7, (2_500, k.n_inputs)))
+    X[2_100, 3] = -1.0                                 # flagged by the checked entry
+    results = {}
+    for route in ("extension", "ctypes"):
+        if route == "ctypes":
+            monkeypatch.setattr(K.native_pool(), "call", None)
+            monkeypatch.setattr(k, "_pool_call", True)
+        for threads in (1, 2):
+            out, status = np.full((2_500, k.n_outputs), np.nan), np.zeros(2_500, np.uint8)
+            flagged = k.check(X, out, status, threads)
+            results[route, threads] = (out, status, flagged, k(X, threads=threads))
+    ref = results["extension", 1]
+    assert ref[2] == 1 and ref[1][2_100] != 0 and np.isfinite(ref[0][:2_000]).all()
+    for key, (out, status, flagged, plain) in results.items():
+        assert np.array_equal(out, ref[0], equal_nan=True) and np.array_equal(status, ref[1]), key
+        assert flagged == ref[2] and np.array_equal(plain, ref[3], equal_nan=True), key
+
+
+@needs_call
+def test_native_call_refuses_what_it_cannot_pass():
+    call = K.native_pool().call
+    m = _q3_llvm()
+    address = m.kernel.native[0]
+    X, out = np.ones((32, m.kernel.n_inputs)), np.empty((32, m.kernel.n_outputs))
+    with pytest.raises(TypeError, match="wrong number of arguments"):
+        call(0, 32, 1)
+    with pytest.raises(ValueError, match="1 to 64 ranges"):
+        call(0, 32, 0, address, X, out)
+    with pytest.raises(ValueError, match="1 to 64 ranges"):
+        call(0, 32, 65, address, X, out)
+    with pytest.raises(ValueError, match="must not decrease"):
+        call(0, 32, (0, 20, 10, 32), address, X, out)
+    with pytest.raises(TypeError):
+        call(0, 32, 1, address, "not an array", out)
+    with pytest.raises((BufferError, ValueError)):
+        call(0, 32, 1, address, np.ones((32, 2 * m.kernel.n_inputs))[:, ::2], out)   # not contiguous
+    assert call(0, 32, (0, 5, 32), address, X, out) == (0, 0)
+    assert np.array_equal(out, m.kernel(X, threads=1))
+
+
 @needs_pool
 def test_native_pool_back_to_back_and_from_several_threads():
     """Many calls in a row (workers awake, stale wake-ups of earlier calls)

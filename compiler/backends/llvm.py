@@ -31,8 +31,11 @@ domain: n-ary sums and products fold left to right, no fast-math flags are
 set (no reassociation, no contraction into FMA), so add/mul/div/sub/neg give
 bit-identical results. ``exp``, ``log`` and ``pow`` use the LLVM intrinsics,
 which the code generator lowers to the C library's scalar functions;
-``sqrt`` is the correctly rounded hardware instruction; ``max`` is
-``llvm.maximum`` (IEEE 754-2019 maximum: NaN propagates, as in numpy). Small
+``sqrt`` is the correctly rounded hardware instruction; ``max`` is numpy's
+``maximum`` folded left to right (NaN propagates; on ties, signed zeros
+included, the later operand wins), emitted as compare-and-select steps (one
+``vmaxpd`` each) and one unordered compare per pair of operands; only a NaN's
+payload may differ from numpy's. Small
 integer powers (|e| ≤ 4) are repeated multiplications, as in the python back
 end.
 
@@ -46,9 +49,8 @@ numeric path serves those.
 
 References
 ----------
-LLVM Language Reference Manual (vector types, ``llvm.maximum``,
+LLVM Language Reference Manual (vector types, ``fcmp``/``select``,
 ``llvm.exp``, ``noalias``), https://llvm.org/docs/LangRef.html.
-IEEE Std 754-2019, section 9.6 (maximum).
 """
 
 from __future__ import annotations
