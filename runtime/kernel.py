@@ -161,6 +161,7 @@ def _load_native_call(pool_address: int):
     (no Python headers): then calls go through ctypes."""
     import importlib.machinery
     import importlib.util
+    import sys
     import sysconfig
     from pathlib import Path
 
@@ -169,7 +170,10 @@ def _load_native_call(pool_address: int):
     try:
         source = Path(__file__).with_name("native_call.c").read_text()
         include = sysconfig.get_paths()["include"]
-        path = shared_library(source, flags=("-O2", f"-I{include}"), libs=(), name=name)
+        # the interpreter's version in the flags, so in the cache key: an
+        # extension module is built for one Python
+        path = shared_library(source, flags=("-O2", f"-I{include}", f"-DTREEFLUX_PY={sys.hexversion}"),
+                              libs=(), name=name)
         loader = importlib.machinery.ExtensionFileLoader(name, str(path))
         module = importlib.util.module_from_spec(importlib.util.spec_from_file_location(name, path, loader=loader))
         loader.exec_module(module)
