@@ -551,3 +551,15 @@ def shared_library(c_source: str, *, flags=("-O3", *NATIVE_FLAGS), libs=("-lm",)
             raise CompileError(f"C compilation failed: {first}")
 
     return fetch(key, build) / f"{name}.so"
+
+
+def load_extension(name: str, path) -> object:
+    """Import the extension module ``name`` from the file ``path`` (a library
+    this cache built: a Cython kernel, native_call.c) without touching sys.path."""
+    import importlib.machinery
+    import importlib.util
+
+    loader = importlib.machinery.ExtensionFileLoader(name, str(path))
+    module = importlib.util.module_from_spec(importlib.util.spec_from_file_location(name, str(path), loader=loader))
+    loader.exec_module(module)
+    return module

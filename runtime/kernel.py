@@ -159,13 +159,11 @@ def _load_native_call(pool_address: int):
     """The extension module built from native_call.c (one native kernel call
     without ctypes: 0.2 instead of 2 us), or None where it cannot be built
     (no Python headers): then calls go through ctypes."""
-    import importlib.machinery
-    import importlib.util
     import sys
     import sysconfig
     from pathlib import Path
 
-    from .cache import CompileError, shared_library
+    from .cache import CompileError, load_extension, shared_library
     name = "_treeflux_native_call"
     try:
         source = Path(__file__).with_name("native_call.c").read_text()
@@ -174,9 +172,7 @@ def _load_native_call(pool_address: int):
         # extension module is built for one Python
         path = shared_library(source, flags=("-O2", f"-I{include}", f"-DTREEFLUX_PY={sys.hexversion}"),
                               libs=(), name=name)
-        loader = importlib.machinery.ExtensionFileLoader(name, str(path))
-        module = importlib.util.module_from_spec(importlib.util.spec_from_file_location(name, path, loader=loader))
-        loader.exec_module(module)
+        module = load_extension(name, path)
     except (CompileError, ImportError, OSError, KeyError):
         return None
     module.set_pool(pool_address, np.ndarray)

@@ -354,37 +354,30 @@ class CompiledModel:
         refused, ``out`` may hold partial results."""
         lean = self._lean
         if lean is not None and self._use_fused and type(X) is np.ndarray:
-            # the leanest path: one native call that checks its own arguments
+            # the lean path: one native call, no copy of X
+            kernel, n_in, n_out = lean
             if threads is not None:
                 check_threads(threads)
             fresh = out is None and X.ndim == 2
             if fresh:
-                out = np.empty((X.shape[0], lean[2]))
-            status = lean[0].plain_check(X, out, threads)
+                out = np.empty((X.shape[0], n_out))
+            status = kernel.plain_check(X, out, threads)          # arguments checked in C
+            if status is None and _plain(X, n_in):
+                # no C entry, or an out it declined: checked here (the message names the fault)
+                n = X.shape[0]
+                if not fresh:
+                    _check_out(out, (n, n_out), X)
+                status = np.empty(n, dtype=np.uint8)
+                if not kernel.check(X, out, status, kernel.threads_for(n, threads)):
+                    status = 0
             if status is not None:
-                if not isinstance(status, int):
+                if not isinstance(status, int):                    # some row was flagged
                     bad = self._flagged(X, status, NOT_PROBABILITY)
                     if bad is not None:
                         out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
                 return out
             if fresh:
                 out = None
-        if lean is not None and self._use_fused and _plain(X, lean[1]):
-            # the lean path: a float64 array of the right shape, one native call
-            kernel, _, n_out = lean
-            n = X.shape[0]
-            if threads is not None:
-                check_threads(threads)
-            if out is None:
-                out = np.empty((n, n_out))
-            else:
-                _check_out(out, (n, n_out), X)
-            status = np.empty(n, dtype=np.uint8)
-            if kernel.check(X, out, status, kernel.threads_for(n, threads)):
-                bad = self._flagged(X, status, NOT_PROBABILITY)
-                if bad is not None:
-                    out[bad] = self._numeric(X[bad], rows=np.flatnonzero(bad))
-            return out
         if ((self._rate_columns is not None or self._rate_kernel is not None) and self._use_fused
                 and _plain(X, len(self.symbols))):
             P = self._looped_lean(X, out, threads)

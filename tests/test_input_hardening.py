@@ -402,10 +402,21 @@ def test_bad_api_inputs_refused_alike_on_native_back_ends(native_model, case):
 def test_native_public_call_takes_plain_arrays_in_one_call(native_model):
     m = native_model
     k = m._lean[0]
-    if k._pooled() and k._pool_checked is None:
-        pytest.skip("the native_call extension could not be built")
+    # Matrix-Tree theorem by hand (k1, L, k2, k3, k4 = 2, 3, 5, 7, 11: rates A→B 6,
+    # B→A 5, B→C 7, C→A 11): in-trees of A 5·11 + 7·11 = 132, of B 6·11 = 66,
+    # of C 6·7 = 42, so p = (132, 66, 42)/240 = (0.55, 0.275, 0.175)
+    row = np.array([[2.0, 3.0, 5.0, 7.0, 11.0]])
+    np.testing.assert_allclose(m.steady_state(row), [[0.55, 0.275, 0.175]], rtol=1e-15)
     want = m.steady_state(X.astype(np.float32))        # the validating path (converts)
     out = np.empty((3, 3))
+    if k._pool_checked is None:
+        # no native_call extension here (no C compiler or no Python headers):
+        # the C entry declines everything and the Python-checked call serves
+        assert k.plain_check(X, out) is None
+        assert m.steady_state(X, out=out) is out and np.array_equal(out, want)
+        with pytest.raises(EvaluationError, match="read-only"):
+            m.steady_state(X, out=_readonly())
+        return
     assert k.plain_check(X, out) == 0 and np.array_equal(out, want)
     assert m.steady_state(X, out=out) is out and np.array_equal(out, want)
     # what the C checks decline: not an ndarray, wrong dtype, shape, layout, read-only, overlap
@@ -428,6 +439,27 @@ def test_native_public_call_takes_plain_arrays_in_one_call(native_model):
     assert status.dtype == np.uint8 and status.tolist()[0] == 0 and status[1] != 0
     with pytest.raises(EvaluationError, match="row 1"):
         m.steady_state(bad)
+
+
+def test_native_public_call_without_the_c_entry(native_model, monkeypatch):
+    """Where native_call could not be built, the lean path checks the
+    arguments in Python: same bits, same refusals, the flagged row named."""
+    m = native_model
+    k = m._lean[0]
+    rng = np.random.default_rng(3)
+    Xr = np.exp(rng.uniform(-5, 5, (700, 5)))
+    want = m.steady_state(Xr)
+    k._pooled()
+    monkeypatch.setattr(k, "_pool_checked", None)
+    assert k.plain_check(Xr, np.empty((700, 3))) is None
+    out = np.empty((700, 3))
+    assert m.steady_state(Xr, out=out, threads=2) is out and np.array_equal(out, want)
+    assert np.array_equal(m.steady_state(Xr), want)
+    with pytest.raises(EvaluationError, match="read-only"):
+        m.steady_state(X, out=_readonly())
+    Xr[650, 2] = 0.0
+    with pytest.raises(EvaluationError, match="row 650"):
+        m.steady_state(Xr)
 
 
 def test_out_sharing_memory_with_inputs_is_refused(model):

@@ -34,8 +34,6 @@ warning says so.
 from __future__ import annotations
 
 import hashlib
-import importlib.machinery
-import importlib.util
 import os
 import shlex
 import subprocess
@@ -466,11 +464,7 @@ def _load(pyx: str, openmp: bool, args: tuple[str, ...] = COMPILE_ARGS):
 
     entry = cache.fetch(key, compile_into)
     suffix = sysconfig.get_config_var("EXT_SUFFIX") or ".so"
-    path = str(entry / f"{module}{suffix}")
-    loader = importlib.machinery.ExtensionFileLoader(module, path)
-    spec = importlib.util.spec_from_file_location(module, path, loader=loader)
-    mod = importlib.util.module_from_spec(spec)
-    loader.exec_module(mod)
+    mod = cache.load_extension(module, entry / f"{module}{suffix}")
     sys.modules[module] = mod
     return mod
 
